@@ -1,0 +1,923 @@
+"""The job file: YAML in, frozen and validated objects out.
+
+One YAML file describes one job (see CONTRACT.md, "Config file")::
+
+    cfg = load_config("configs/depot-weekly.yaml")
+    cfg.source.table, cfg.period, [m.name for m in cfg.metrics]
+
+This module is the edge: everything a user can get wrong is caught here, once, and
+reported as a :class:`~monitor.errors.ConfigError` with one line of the form::
+
+    <file>: <key path>: <what is wrong> (given: <value>; accepted: <what>)
+
+e.g. ``jobs/depots.yaml: metrics[1].test: unknown test (given: 'anvoa'; accepted: auto, anova, welch,
+kruskal)``. Code below this module trusts the objects it returns.
+
+Besides checking keys, types and values, loading
+
+* expands ``${NAME}`` in every string value from the environment (``$${`` is a literal
+  ``${``); a number or true/false may come from a variable too (``port: ${SMTP_PORT}``);
+* makes relative paths absolute against the config file's folder: the ``log`` alert
+  ``path``, a relative ``command`` executable (``./notify.sh``), and the file of
+  ``sqlite:///`` and ``duckdb:///`` URLs;
+* fills defaults: ``job`` is the file's stem, ``history.url`` is
+  ``sqlite:///<config folder>/.segwatch/history.sqlite``.
+
+Secrets stay out of ``repr()`` and of error messages: database URLs show ``***`` for a
+password; SMTP passwords and webhook header values show ``<hidden>``.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+import json
+import logging
+import math
+import os
+import re
+from collections.abc import Mapping
+from dataclasses import dataclass, fields
+from datetime import date
+from pathlib import Path
+from typing import Any, Callable, ClassVar, NoReturn, Union
+from urllib.parse import urlsplit
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError, available_timezones
+
+import yaml
+from apscheduler.triggers.cron import CronTrigger
+from sqlalchemy.engine import make_url
+from sqlalchemy.exc import ArgumentError
+
+from monitor.errors import ConfigError
+
+__all__ = [
+    "SourceConfig",
+    "MetricConfig",
+    "FdrConfig",
+    "HistoryConfig",
+    "SmtpConfig",
+    "LogAlert",
+    "EmailAlert",
+    "WebhookAlert",
+    "CommandAlert",
+    "AlertConfig",
+    "QualityConfig",
+    "PosthocConfig",
+    "JobConfig",
+    "load_config",
+    "parse_config",
+    "config_hash",
+    "display_url",
+]
+
+logger = logging.getLogger(__name__)
+
+PERIOD_KINDS = ("day", "week", "month")
+TESTS = ("auto", "anova", "welch", "kruskal")
+TRANSFORMS = ("none", "log", "log1p")
+ADJUSTMENTS = ("bh", "by", "holm", "bonferroni", "none")
+NAIVE_TIME = ("local", "utc")
+
+
+# -- the objects -------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, repr=False)
+class SourceConfig:
+    """Where the records come from. Exactly one of ``table`` and ``query`` is set.
+
+    ``query`` is one SELECT (or WITH) statement with trailing semicolons and comments
+    removed, so it can be wrapped as a subquery. ``naive_time`` says how timestamps
+    without a zone are read: as wall time in the job's zone (``local``) or as UTC.
+    """
+
+    url: str
+    table: str | None
+    query: str | None
+    time_column: str
+    segment_column: str
+    naive_time: str = "local"
+
+    @property
+    def display_url(self) -> str:
+        """The URL with any password replaced by ``***``, for logs and messages."""
+        return display_url(self.url)
+
+    def __repr__(self) -> str:
+        return _repr_with(self, url=self.display_url)
+
+
+@dataclass(frozen=True)
+class MetricConfig:
+    """One numeric column compared across segments.
+
+    ``name`` identifies the metric in results and history (it defaults to ``column``;
+    two entries may share a column under different names). ``min_effect`` is in
+    omega-squared units.
+    """
+
+    column: str
+    name: str
+    test: str = "auto"
+    reference: str | None = None
+    transform: str = "none"
+    unit: str | None = None
+    decimals: int | None = None
+    min_effect: float | None = None
+    label: str | None = None
+
+
+@dataclass(frozen=True)
+class FdrConfig:
+    """Multiplicity control across the metrics of one period."""
+
+    method: str = "bh"
+    level: float = 0.05
+
+
+@dataclass(frozen=True, repr=False)
+class HistoryConfig:
+    """Where results, events and the period ledger are stored (an SQLAlchemy URL)."""
+
+    url: str
+
+    @property
+    def display_url(self) -> str:
+        return display_url(self.url)
+
+    def __repr__(self) -> str:
+        return _repr_with(self, url=self.display_url)
+
+
+@dataclass(frozen=True, repr=False)
+class SmtpConfig:
+    """How to reach the mail server. ``ssl`` is implicit TLS; ``starttls`` upgrades a plain connection.
+
+    When the file sets ``ssl: true`` and no ``port``, the port is 465 (RFC 8314), else 25.
+    A blank ``username`` or ``password`` (an empty variable, say) reads as None: no login.
+    """
+
+    host: str
+    port: int = 25
+    starttls: bool = False
+    ssl: bool = False
+    username: str | None = None
+    password: str | None = None
+    timeout: float = 30.0
+
+    def __repr__(self) -> str:
+        return _repr_with(self, password=_HIDDEN if self.password else None)
+
+
+@dataclass(frozen=True)
+class LogAlert:
+    """Append events as JSON Lines to ``path`` (absolute)."""
+
+    type: ClassVar[str] = "log"
+    path: Path
+
+
+@dataclass(frozen=True)
+class EmailAlert:
+    """Mail the events; ``sender`` is the YAML key ``from``."""
+
+    type: ClassVar[str] = "email"
+    to: tuple[str, ...]
+    sender: str
+    smtp: SmtpConfig
+    subject_prefix: str = "[segwatch]"
+
+
+@dataclass(frozen=True, repr=False)
+class WebhookAlert:
+    """POST the events as JSON to ``url``. ``headers`` is a tuple of (name, value) pairs."""
+
+    type: ClassVar[str] = "webhook"
+    url: str
+    timeout: float = 10.0
+    headers: tuple[tuple[str, str], ...] = ()
+
+    @property
+    def header_dict(self) -> dict[str, str]:
+        return dict(self.headers)
+
+    def __repr__(self) -> str:
+        # the path of a webhook URL is often its secret
+        origin = urlsplit(self.url)
+        return _repr_with(self, url=f"{origin.scheme}://{origin.netloc}/...",
+                          headers=tuple((name, _HIDDEN) for name, _ in self.headers))
+
+
+@dataclass(frozen=True)
+class CommandAlert:
+    """Run ``run`` (no shell) with the events as JSON on stdin."""
+
+    type: ClassVar[str] = "command"
+    run: tuple[str, ...]
+    timeout: float = 60.0
+
+
+AlertConfig = Union[LogAlert, EmailAlert, WebhookAlert, CommandAlert]
+
+
+@dataclass(frozen=True)
+class QualityConfig:
+    """Data-quality limits: the share of unusable values tolerated, and rows needed per segment."""
+
+    max_bad_share: float = 0.05
+    min_rows_per_segment: int = 2
+
+
+@dataclass(frozen=True)
+class PosthocConfig:
+    """Post-hoc settings: p-value adjustment for Dunn's pairs, and the confidence of intervals."""
+
+    dunn_adjust: str = "holm"
+    confidence: float = 0.95
+
+
+@dataclass(frozen=True)
+class JobConfig:
+    """One validated job. ``path`` is the absolute path of the file it came from."""
+
+    job: str
+    path: Path
+    source: SourceConfig
+    period: str
+    timezone: str
+    metrics: tuple[MetricConfig, ...]
+    fdr: FdrConfig
+    history: HistoryConfig
+    alerts: tuple[AlertConfig, ...]
+    schedule: str | None
+    quality: QualityConfig
+    posthoc: PosthocConfig
+    alpha: float = 0.05
+
+    @property
+    def zone(self) -> ZoneInfo:
+        return ZoneInfo(self.timezone)
+
+    @property
+    def fingerprint(self) -> str:
+        """See :func:`config_hash`."""
+        return config_hash(self)
+
+
+def config_hash(cfg: JobConfig) -> str:
+    """A short, stable hash of the settings that change a computed statistic.
+
+    It covers each metric's name, column, test, reference, transform and min_effect
+    (in name order, since order changes no result), the FDR method and level, ``alpha``,
+    the post-hoc settings and the quality limits. Labels, units, decimals, alerts,
+    schedule and the source are left out. Returns 12 hex digits of a SHA-256.
+    """
+    settings = {
+        "version": 1,
+        "metrics": sorted(
+            [m.name, m.column, m.test, m.reference, m.transform, m.min_effect] for m in cfg.metrics
+        ),
+        "fdr": [cfg.fdr.method, cfg.fdr.level],
+        "alpha": cfg.alpha,
+        "posthoc": [cfg.posthoc.dunn_adjust, cfg.posthoc.confidence],
+        "quality": [cfg.quality.max_bad_share, cfg.quality.min_rows_per_segment],
+    }
+    blob = json.dumps(settings, sort_keys=True, separators=(",", ":"))
+    return hashlib.sha256(blob.encode("utf-8")).hexdigest()[:12]
+
+
+def display_url(url: str) -> str:
+    """``url`` with a password, if any, replaced by ``***``."""
+    return _CREDENTIALS.sub(r"\1***@", url)
+
+
+def _repr_with(obj: Any, **shown: Any) -> str:
+    """A dataclass repr with some fields shown differently (masked secrets)."""
+    parts = (f"{f.name}={shown.get(f.name, getattr(obj, f.name))!r}" for f in fields(obj))
+    return f"{type(obj).__name__}({', '.join(parts)})"
+
+
+# -- reading the file --------------------------------------------------------------------
+
+
+def load_config(path: str | os.PathLike[str]) -> JobConfig:
+    """Read, parse and validate the job file at ``path``.
+
+    Raises
+    ------
+    ConfigError
+        The file is missing, unreadable, not YAML, empty, or any key is invalid.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8-sig")
+    except FileNotFoundError:
+        raise ConfigError(f"{path}: config file not found") from None
+    except IsADirectoryError:
+        raise ConfigError(f"{path}: is a folder, not a config file") from None
+    except UnicodeDecodeError as exc:
+        byte = exc.object[exc.start]
+        raise ConfigError(f"{path}: is not UTF-8 text (byte {byte:#04x} at offset {exc.start})") from None
+    except OSError as exc:
+        raise ConfigError(f"{path}: cannot read the config file: {exc.strerror}") from None
+    try:
+        data = yaml.load(text, Loader=_Loader)  # noqa: S506 - a SafeLoader subclass
+    except yaml.MarkedYAMLError as exc:
+        mark = exc.problem_mark or exc.context_mark
+        where = f"line {mark.line + 1}, column {mark.column + 1}: " if mark else ""
+        what = "; ".join(part for part in (exc.context, exc.problem) if part)
+        if isinstance(exc, (yaml.scanner.ScannerError, yaml.parser.ParserError)):
+            what += " (check indentation, and quote values that start with * & ! or contain ': ')"
+        raise ConfigError(f"{path}: {where}invalid YAML: {what}") from None
+    except yaml.YAMLError as exc:
+        raise ConfigError(f"{path}: invalid YAML: {' '.join(str(exc).split())}") from None
+    if data is None:
+        raise ConfigError(
+            f"{path}: the config file is empty; expected a mapping with source, period, timezone and metrics"
+        )
+    logger.debug("read config %s", path)
+    return parse_config(data, path)
+
+
+class _Loader(yaml.SafeLoader):
+    """PyYAML's safe loader, except that a repeated key is an error instead of a silent overwrite."""
+
+
+def _construct_mapping(loader: _Loader, node: yaml.MappingNode) -> dict:
+    first_line: dict[Any, int] = {}
+    for key_node, _ in node.value:
+        if key_node.tag == "tag:yaml.org,2002:merge":
+            continue
+        key = loader.construct_object(key_node, deep=True)
+        try:
+            if key in first_line:
+                raise yaml.constructor.ConstructorError(
+                    None, None, f"duplicate key {key!r} (first at line {first_line[key]})", key_node.start_mark
+                )
+            first_line[key] = key_node.start_mark.line + 1
+        except TypeError:  # an unhashable key; the base constructor reports it
+            break
+    return loader.construct_mapping(node, deep=True)
+
+
+_Loader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_mapping)
+
+
+# -- validation --------------------------------------------------------------------------
+
+_TOP_KEYS = ("job", "source", "period", "timezone", "metrics", "fdr", "history", "alerts",
+             "schedule", "quality", "posthoc", "alpha")
+_SOURCE_KEYS = ("url", "table", "query", "time_column", "segment_column", "naive_time")
+_METRIC_KEYS = ("column", "name", "test", "reference", "transform", "unit", "decimals", "min_effect", "label")
+_ALERT_KEYS = {
+    "log": ("type", "path"),
+    "email": ("type", "to", "from", "smtp", "subject_prefix"),
+    "webhook": ("type", "url", "timeout", "headers"),
+    "command": ("type", "run", "timeout"),
+}
+_SMTP_KEYS = ("host", "port", "starttls", "ssl", "username", "password", "timeout")
+
+_MISSING: Any = type("_Missing", (), {"__repr__": lambda self: "nothing"})()
+_REQUIRED: Any = type("_Required", (), {})()
+_HIDDEN = "<hidden>"
+_CREDENTIALS = re.compile(r"(://[^/:@\s]*:)[^@/\s]*@")
+_PLACEHOLDER = re.compile(r"\$\$\{|\$\{([A-Za-z_][A-Za-z0-9_]*)\}|\$\{")
+_HEADER_NAME = re.compile(r"[!#$%&'*+.^_`|~0-9A-Za-z-]+")
+_BOOL_WORDS = {"true": True, "yes": True, "on": True, "false": False, "no": False, "off": False}
+_ENV_HINT = "variables that are set in the environment, as ${NAME}; $${ for a literal ${"
+
+
+def parse_config(data: Mapping, path: str | os.PathLike[str], environ: Mapping[str, str] | None = None) -> JobConfig:
+    """Validate already-parsed YAML ``data`` as if read from ``path``.
+
+    ``environ`` replaces ``os.environ`` for ``${NAME}`` expansion (tests pass a dict).
+
+    Raises
+    ------
+    ConfigError
+        The first problem found, as one line naming file, key path, value and what is accepted.
+    """
+    path = Path(path)
+    r = _Reader(str(path), Path(os.path.normpath(path.absolute().parent)), os.environ if environ is None else environ)
+    top = r.mapping(data, "", _TOP_KEYS, "a mapping with keys source, period, timezone, metrics and optional others")
+    job = r.text(top, "job", "", "a job name", default=path.stem)
+    if not job.isprintable():
+        r.fail("job", "must be printable text on one line", job, "a job name")
+    source = _source(r, top)
+    period = r.choice(top, "period", "", PERIOD_KINDS, "period kind")
+    timezone = _timezone(r, top)
+    metrics = _metrics(r, top, source)
+    fdr = r.section(top, "fdr", "", ("method", "level"))
+    history = r.section(top, "history", "", ("url",))
+    quality = r.section(top, "quality", "", ("max_bad_share", "min_rows_per_segment"))
+    posthoc = r.section(top, "posthoc", "", ("dunn_adjust", "confidence"))
+    default_history = f"sqlite:///{r.folder / '.segwatch' / 'history.sqlite'}"
+    return JobConfig(
+        job=job,
+        path=Path(os.path.normpath(path.absolute())),
+        source=source,
+        period=period,
+        timezone=timezone,
+        metrics=metrics,
+        fdr=FdrConfig(
+            method=r.choice(fdr, "method", "fdr", ADJUSTMENTS, "FDR method", default="bh"),
+            level=r.number(fdr, "level", "fdr", _open_unit, "a number between 0 and 1, e.g. 0.05", default=0.05),
+        ),
+        history=HistoryConfig(url=_db_url(r, history, "url", "history", default=default_history)),
+        alerts=_alerts(r, top),
+        schedule=_schedule(r, top),
+        quality=QualityConfig(
+            max_bad_share=r.number(quality, "max_bad_share", "quality", lambda x: 0 <= x <= 1,
+                                   "a share from 0 to 1, e.g. 0.05", default=0.05),
+            min_rows_per_segment=r.integer(quality, "min_rows_per_segment", "quality", lambda x: x >= 2,
+                                           "a whole number of at least 2", default=2),
+        ),
+        posthoc=PosthocConfig(
+            dunn_adjust=r.choice(posthoc, "dunn_adjust", "posthoc", ADJUSTMENTS, "adjustment", default="holm"),
+            confidence=r.number(posthoc, "confidence", "posthoc", _open_unit,
+                                "a level between 0 and 1, e.g. 0.95", default=0.95),
+        ),
+        alpha=r.number(top, "alpha", "", _open_unit, "a number between 0 and 1, e.g. 0.05", default=0.05),
+    )
+
+
+def _open_unit(x: float) -> bool:
+    return 0 < x < 1
+
+
+def _source(r: _Reader, top: dict) -> SourceConfig:
+    src = r.section(top, "source", "", _SOURCE_KEYS, required=True)
+    url = _db_url(r, src, "url", "source")
+    table = r.text(src, "table", "source", "a table name", default=None)
+    query = src.get("query")
+    if table is not None and query is not None:
+        r.fail("source.query", "cannot be combined with source.table; give exactly one of them",
+               query, "either table or query")
+    if table is None and query is None:
+        r.fail("source.table", "is required unless source.query is given", _MISSING,
+               "a table name, or a SELECT statement under source.query")
+    if query is not None:
+        query = _select(r, r.text(src, "query", "source", "one SELECT statement"))
+    time_column = r.text(src, "time_column", "source", "the name of the timestamp or date column")
+    segment_column = r.text(src, "segment_column", "source", "the name of the column holding the segments")
+    if segment_column.casefold() == time_column.casefold():
+        r.fail("source.segment_column", "is the same column as source.time_column", segment_column,
+               "a column other than the time column")
+    naive_time = r.choice(src, "naive_time", "source", NAIVE_TIME, "naive_time", default="local")
+    return SourceConfig(url, table, query, time_column, segment_column, naive_time)
+
+
+def _select(r: _Reader, sql: str) -> str:
+    """Check that ``sql`` is one SELECT/WITH statement; return it without trailing ``;`` and comments."""
+    accepted = "one SELECT or WITH ... SELECT statement"
+    first = last = None
+    semicolons: list[int] = []
+    i, n = 0, len(sql)
+    while i < n:
+        if sql.startswith("--", i):
+            end = sql.find("\n", i)
+            i = n if end < 0 else end + 1
+            continue
+        if sql.startswith("/*", i):
+            end = sql.find("*/", i + 2)
+            i = n if end < 0 else end + 2
+            continue
+        ch = sql[i]
+        if ch in "'\"`":  # a quoted string or identifier; a doubled quote stays inside
+            end = i + 1
+            while True:
+                end = sql.find(ch, end)
+                if end < 0 or not sql.startswith(ch * 2, end):
+                    break
+                end += 2
+            first = i if first is None else first
+            last = i = n - 1 if end < 0 else end
+            i += 1
+            continue
+        if ch == ";":
+            semicolons.append(i)
+        elif not ch.isspace():
+            first = i if first is None else first
+            last = i
+        i += 1
+    if first is None:
+        r.fail("source.query", "holds no SQL statement", sql, accepted)
+    inner = [p for p in semicolons if p < last]
+    if inner:
+        r.fail("source.query", f"holds more than one statement (a ';' at character {inner[0] + 1})", sql, accepted)
+    keyword = re.match(r"[(\s]*([A-Za-z]+)", sql[first:])
+    if keyword is None or keyword.group(1).lower() not in ("select", "with"):
+        r.fail("source.query", "must be a SELECT statement (or WITH ... SELECT)", sql, accepted)
+    return sql[: last + 1]
+
+
+def _timezone(r: _Reader, top: dict) -> str:
+    name = r.text(top, "timezone", "", "an IANA time zone name like UTC or Europe/Berlin")
+    try:
+        ZoneInfo(name)
+    except (ZoneInfoNotFoundError, ValueError, OSError):
+        known = {zone.lower(): zone for zone in available_timezones()}
+        close = difflib.get_close_matches(name.lower(), known, n=1, cutoff=0.75)
+        hint = f"; did you mean {known[close[0]]!r}?" if close else ""
+        r.fail("timezone", f"unknown time zone{hint}", name, "an IANA time zone name like UTC or Europe/Berlin")
+    return name
+
+
+def _metrics(r: _Reader, top: dict, source: SourceConfig) -> tuple[MetricConfig, ...]:
+    accepted = "a list of metrics, each a column name or a mapping with column and optional test, name, ..."
+    items = r.listing(top, "metrics", "", accepted)
+    metrics: list[MetricConfig] = []
+    where: dict[str, int] = {}
+    for index, item in enumerate(items):
+        path = f"metrics[{index}]"
+        if isinstance(item, str):
+            item = {"column": item}
+        spec = r.mapping(item, path, _METRIC_KEYS, "a column name, or a mapping with column and optional "
+                         + ", ".join(_METRIC_KEYS[1:]))
+        column = r.text(spec, "column", path, "the name of a numeric column")
+        for other, key in ((source.segment_column, "segment_column"), (source.time_column, "time_column")):
+            if column.casefold() == other.casefold():
+                r.fail(f"{path}.column", f"is source.{key}; a metric must be another column", column,
+                       "a numeric column other than the segment and time columns")
+        name = r.text(spec, "name", path, "a metric name", default=column)
+        if name in where:
+            key = "name" if "name" in spec else "column"
+            r.fail(f"{path}.{key}", f"repeats the metric name of metrics[{where[name]}]", name,
+                   "a name no other metric has, via name: when one column is used twice")
+        where[name] = index
+        metrics.append(MetricConfig(
+            column=column,
+            name=name,
+            test=r.choice(spec, "test", path, TESTS, "test", default="auto"),
+            reference=r.text(spec, "reference", path, 'a segment value as text, numbers in quotes like "3"',
+                             default=None),
+            transform=r.choice(spec, "transform", path, TRANSFORMS, "transform", default="none"),
+            unit=r.text(spec, "unit", path, "a unit label like EUR or h", default=None),
+            decimals=r.integer(spec, "decimals", path, lambda x: 0 <= x <= 12, "a whole number from 0 to 12",
+                               default=None),
+            # Cohen's (1988) small / medium / large effect sizes, common practice
+            min_effect=r.number(spec, "min_effect", path, lambda x: 0 <= x < 1,
+                                "an omega squared from 0 up to 1, e.g. 0.01 small, 0.06 medium, 0.14 large",
+                                default=None),
+            label=r.text(spec, "label", path, "a display label", default=None),
+        ))
+    return tuple(metrics)
+
+
+def _alerts(r: _Reader, top: dict) -> tuple[AlertConfig, ...]:
+    kinds = ", ".join(_ALERT_KEYS)
+    items = r.listing(top, "alerts", "", f"a list of alerts, each a mapping with type: {kinds}",
+                      default=[], allow_empty=True)
+    alerts: list[AlertConfig] = []
+    for index, item in enumerate(items):
+        path = f"alerts[{index}]"
+        if not isinstance(item, Mapping):
+            r.mapping(item, path, None, f"a mapping with type: {kinds}")
+        kind = r.choice(item, "type", path, tuple(_ALERT_KEYS), "alert type")
+        spec = r.mapping(item, path, _ALERT_KEYS[kind], f"a mapping with keys {', '.join(_ALERT_KEYS[kind])}")
+        alerts.append(_ALERT_READERS[kind](r, spec, path))
+    return tuple(alerts)
+
+
+def _log_alert(r: _Reader, spec: dict, path: str) -> LogAlert:
+    return LogAlert(path=r.folder_path(r.text(spec, "path", path, "a file path for the JSON Lines log")))
+
+
+def _email_alert(r: _Reader, spec: dict, path: str) -> EmailAlert:
+    def address(value: str) -> bool:
+        return "@" in value and not any(ch.isspace() for ch in value)
+
+    to = r.strings(spec, "to", path, "a list of e-mail addresses like [ops@example.com]", check=address,
+                   bad="is not an e-mail address")
+    sender = r.text(spec, "from", path, "an e-mail address like segwatch@example.com")
+    if not address(sender):
+        r.fail(f"{path}.from", "is not an e-mail address", sender, "an e-mail address like segwatch@example.com")
+    where = f"{path}.smtp"
+    smtp = r.section(spec, "smtp", path, _SMTP_KEYS, required=True)
+    starttls = r.boolean(smtp, "starttls", where, default=False)
+    ssl = r.boolean(smtp, "ssl", where, default=False)
+    if starttls and ssl:
+        r.fail(f"{where}.ssl", "cannot be combined with starttls: true", True,
+               "ssl (implicit TLS, port 465) or starttls (port 587), not both")
+    return EmailAlert(
+        to=to,
+        sender=sender,
+        smtp=SmtpConfig(
+            host=r.text(smtp, "host", where, "a mail server host name"),
+            port=r.integer(smtp, "port", where, lambda x: 1 <= x <= 65535, "a port number from 1 to 65535",
+                           default=465 if ssl else 25),
+            starttls=starttls,
+            ssl=ssl,
+            username=r.text(smtp, "username", where, "a login name", default=None, blank_is_none=True),
+            password=r.text(smtp, "password", where, "a password, best as ${VARIABLE}", default=None,
+                            blank_is_none=True, secret=True),
+            timeout=r.number(smtp, "timeout", where, _positive, "seconds, more than 0", default=30.0),
+        ),
+        subject_prefix=r.text(spec, "subject_prefix", path, "a subject prefix", default="[segwatch]",
+                              blank_is_none=False, allow_blank=True),
+    )
+
+
+def _webhook_alert(r: _Reader, spec: dict, path: str) -> WebhookAlert:
+    accepted = "an http:// or https:// URL"
+    url = r.text(spec, "url", path, accepted)
+    parts = urlsplit(url)
+    if parts.scheme.lower() not in ("http", "https") or not parts.netloc:
+        r.fail(f"{path}.url", "is not an http(s) URL", url, accepted)
+    header_accepted = "a mapping of HTTP header names to text values"
+    headers = r.section(spec, "headers", path, None, accepted=header_accepted)
+    pairs = []
+    for name in headers:
+        if not isinstance(name, str) or not _HEADER_NAME.fullmatch(name):
+            r.fail(f"{path}.headers", "has a key that is not an HTTP header name", name,
+                   "letters, digits and - like X-Api-Key")
+        value = r.text(headers, name, f"{path}.headers", "header text", secret=True, allow_blank=True)
+        if "\r" in value or "\n" in value:
+            r.fail(f"{path}.headers.{name}", "contains a line break", value, "header text on one line", secret=True)
+        pairs.append((name, value))
+    return WebhookAlert(
+        url=url,
+        timeout=r.number(spec, "timeout", path, _positive, "seconds, more than 0", default=10.0),
+        headers=tuple(pairs),
+    )
+
+
+def _command_alert(r: _Reader, spec: dict, path: str) -> CommandAlert:
+    run = r.strings(spec, "run", path, 'a list: the program, then its arguments, like ["notify-ops", "--stdin"]')
+    program = run[0]
+    if "/" in program or os.sep in program:  # a path, not a name looked up on PATH
+        run = (str(r.folder_path(program)),) + run[1:]
+    return CommandAlert(run=run, timeout=r.number(spec, "timeout", path, _positive, "seconds, more than 0",
+                                                  default=60.0))
+
+
+_ALERT_READERS: dict[str, Callable[[_Reader, dict, str], AlertConfig]] = {
+    "log": _log_alert,
+    "email": _email_alert,
+    "webhook": _webhook_alert,
+    "command": _command_alert,
+}
+
+
+def _positive(x: float) -> bool:
+    return x > 0
+
+
+def _schedule(r: _Reader, top: dict) -> str | None:
+    accepted = "5 cron fields with day names, like '0 6 * * mon' or '30 7 * * mon-fri'"
+    text = r.text(top, "schedule", "", accepted, default=None)
+    if text is None:
+        return None
+    parts = text.split()
+    if len(parts) != 5:
+        r.fail("schedule", f"needs 5 cron fields (minute hour day-of-month month day-of-week), found {len(parts)}",
+               text, accepted)
+    if any(ch.isdigit() for ch in parts[4]):
+        r.fail("schedule", "day-of-week numbers are ambiguous (cron counts 0 as Sunday, the scheduler as Monday);"
+               " use day names mon..sun", text, accepted)
+    if parts[2] != "*" and parts[4] != "*":
+        r.fail("schedule", "restricts both day-of-month and day-of-week (cron fires when either matches,"
+               " the scheduler only when both do); restrict one of them", text, accepted)
+    try:
+        CronTrigger.from_crontab(text, timezone="UTC")
+    except ValueError as exc:
+        r.fail("schedule", f"is not a valid cron expression: {exc}", text, accepted)
+    return " ".join(parts)
+
+
+def _db_url(r: _Reader, section: dict, key: str, path: str, default: Any = _REQUIRED) -> str:
+    """A validated SQLAlchemy URL; a relative SQLite/DuckDB file becomes absolute."""
+    accepted = "an SQLAlchemy URL like sqlite:///data/depots.sqlite or postgresql://user@host/db"
+    text = r.text(section, key, path, accepted, default=default)
+    try:
+        url = make_url(text)
+    except ArgumentError:
+        r.fail(_join(path, key), "is not a database URL", text, accepted)
+    database = url.database
+    if url.get_backend_name() not in ("sqlite", "duckdb") or not database or ":" in database:
+        return text  # a server, an in-memory database, or a file: / md: URI
+    return url.set(database=str(r.folder_path(database))).render_as_string(hide_password=False)
+
+
+def _join(path: str, key: Any) -> str:
+    return f"{path}.{key}" if path else str(key)
+
+
+def _describe(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true/false"
+    if isinstance(value, int):
+        return "a whole number"
+    if isinstance(value, float):
+        return "a number"
+    if isinstance(value, str):
+        return "text"
+    if isinstance(value, Mapping):
+        return "a mapping"
+    if isinstance(value, list):
+        return "a list"
+    if isinstance(value, date):
+        return "a date"
+    if value is None:
+        return "empty"
+    return type(value).__name__
+
+
+def _show(value: Any, secret: bool = False) -> str:
+    if value is _MISSING:
+        return "nothing"
+    if value is None:
+        return "null"
+    if secret:
+        return _HIDDEN
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    text = display_url(repr(value))
+    return text if len(text) <= 80 else text[:77] + "..."
+
+
+class _Reader:
+    """Typed getters over the parsed YAML that raise one-line ConfigErrors."""
+
+    def __init__(self, file: str, folder: Path, environ: Mapping[str, str]) -> None:
+        self.file = file
+        self.folder = folder
+        self.environ = environ
+
+    def fail(self, path: str, what: str, given: Any, accepted: str, *, secret: bool = False) -> NoReturn:
+        message = f"{self.file}: {path or 'top level'}: {what} (given: {_show(given, secret)}; accepted: {accepted})"
+        raise ConfigError(" ".join(message.splitlines()))
+
+    def folder_path(self, text: str) -> Path:
+        """``text`` as a path; relative ones are taken from the config file's folder."""
+        return Path(os.path.normpath(self.folder / Path(text).expanduser()))
+
+    # containers
+
+    def mapping(self, value: Any, path: str, keys: tuple[str, ...] | None, accepted: str) -> dict:
+        if not isinstance(value, Mapping):
+            self.fail(path, f"must be a mapping, not {_describe(value)}", value, accepted)
+        if keys is not None:
+            for key in value:
+                if key not in keys:
+                    close = difflib.get_close_matches(str(key), keys, n=1, cutoff=0.6)
+                    hint = f"; did you mean {close[0]!r}?" if close else ""
+                    self.fail(_join(path, key), f"unknown key{hint}", key, ", ".join(keys))
+        return dict(value)
+
+    def section(self, parent: dict, key: str, path: str, keys: tuple[str, ...] | None, *,
+                required: bool = False, accepted: str | None = None) -> dict:
+        where = _join(path, key)
+        accepted = accepted or f"a mapping with keys {', '.join(keys or ())}"
+        value = parent.get(key)
+        if value is None:
+            if required:
+                self.fail(where, "is required", parent.get(key, _MISSING), accepted)
+            return {}
+        return self.mapping(value, where, keys, accepted)
+
+    def listing(self, parent: dict, key: str, path: str, accepted: str, *, default: Any = _REQUIRED,
+             allow_empty: bool = False) -> list:
+        where = _join(path, key)
+        value = parent.get(key)
+        if value is None:
+            if default is _REQUIRED:
+                self.fail(where, "is required", parent.get(key, _MISSING), accepted)
+            return default
+        if not isinstance(value, list):
+            self.fail(where, f"must be a list, not {_describe(value)}", value, accepted)
+        if not value and not allow_empty:
+            self.fail(where, "must not be empty", value, accepted)
+        return value
+
+    def strings(self, parent: dict, key: str, path: str, accepted: str, *,
+                check: Callable[[str], bool] | None = None, bad: str = "must not be blank") -> tuple[str, ...]:
+        items = self.listing(parent, key, path, accepted)
+        values = []
+        for index, item in enumerate(items):
+            where = f"{_join(path, key)}[{index}]"
+            if not isinstance(item, str):
+                self.fail(where, f"must be text, not {_describe(item)}", item, accepted)
+            value = self.expand(item, where)
+            if not value.strip():
+                self.fail(where, "must not be blank", value, accepted)
+            if check is not None and not check(value):
+                self.fail(where, bad, value, accepted)
+            values.append(value)
+        return tuple(values)
+
+    # scalars
+
+    def expand(self, text: str, path: str) -> str:
+        """``text`` with ``${NAME}`` replaced from the environment and ``$${`` made ``${``."""
+        if "${" not in text:
+            return text
+
+        def replace(match: re.Match[str]) -> str:
+            if match.group(0) == "$${":
+                return "${"
+            name = match.group(1)
+            if name is None:
+                self.fail(path, "has a '${' that is not a variable like ${NAME}", text, _ENV_HINT)
+            if name not in self.environ:
+                self.fail(path, f"environment variable {name} is not set", text, _ENV_HINT)
+            return self.environ[name]
+
+        return _PLACEHOLDER.sub(replace, text)
+
+    def text(self, parent: dict, key: str, path: str, accepted: str, *, default: Any = _REQUIRED,
+             secret: bool = False, allow_blank: bool = False, blank_is_none: bool = False) -> Any:
+        where = _join(path, key)
+        value = parent.get(key)
+        if value is None:
+            if default is _REQUIRED:
+                self.fail(where, "is required", parent.get(key, _MISSING), accepted)
+            return default
+        if not isinstance(value, str):
+            self.fail(where, f"must be text, not {_describe(value)}", value, accepted, secret=secret)
+        value = self.expand(value, where)
+        if not value.strip():
+            if blank_is_none:
+                return None
+            if not allow_blank:
+                self.fail(where, "must not be blank", value, accepted)
+        return value
+
+    def choice(self, parent: dict, key: str, path: str, choices: tuple[str, ...], noun: str, *,
+               default: Any = _REQUIRED) -> str:
+        accepted = ", ".join(choices)
+        value = self.text(parent, key, path, accepted, default=default)
+        if value.lower() in choices:
+            return value.lower()
+        close = difflib.get_close_matches(value.lower(), choices, n=1, cutoff=0.6)
+        hint = f"; did you mean {close[0]!r}?" if close else ""
+        self.fail(_join(path, key), f"unknown {noun}{hint}", value, accepted)
+
+    def _scalar(self, parent: dict, key: str, path: str, accepted: str, default: Any) -> Any:
+        """The value, the default when absent, or text read from the environment for ``${NAME}``."""
+        value = parent.get(key)
+        if value is None:
+            if default is _REQUIRED:
+                self.fail(_join(path, key), "is required", parent.get(key, _MISSING), accepted)
+            return _Default(default)
+        if isinstance(value, str) and "${" in value:
+            return _FromEnv(self.expand(value, _join(path, key)).strip())
+        return value
+
+    def number(self, parent: dict, key: str, path: str, check: Callable[[float], bool], accepted: str, *,
+               default: Any = _REQUIRED) -> Any:
+        where = _join(path, key)
+        value = self._scalar(parent, key, path, accepted, default)
+        if isinstance(value, _Default):
+            return value.value
+        if isinstance(value, _FromEnv):
+            try:
+                value = float(value)
+            except ValueError:
+                self.fail(where, "must be a number", value, accepted)
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            self.fail(where, f"must be a number, not {_describe(value)}", value, accepted)
+        if not math.isfinite(value):
+            self.fail(where, "must be a finite number", value, accepted)
+        if not check(value):
+            self.fail(where, "is out of range", value, accepted)
+        return float(value)
+
+    def integer(self, parent: dict, key: str, path: str, check: Callable[[int], bool], accepted: str, *,
+                default: Any = _REQUIRED) -> Any:
+        where = _join(path, key)
+        value = self._scalar(parent, key, path, accepted, default)
+        if isinstance(value, _Default):
+            return value.value
+        if isinstance(value, _FromEnv):
+            try:
+                value = int(value)
+            except ValueError:
+                self.fail(where, "must be a whole number", value, accepted)
+        if isinstance(value, bool) or not isinstance(value, int):
+            self.fail(where, f"must be a whole number, not {_describe(value)}", value, accepted)
+        if not check(value):
+            self.fail(where, "is out of range", value, accepted)
+        return value
+
+    def boolean(self, parent: dict, key: str, path: str, *, default: bool) -> bool:
+        value = self._scalar(parent, key, path, "true or false", default)
+        if isinstance(value, _Default):
+            return value.value
+        if isinstance(value, _FromEnv) and value.lower() in _BOOL_WORDS:
+            return _BOOL_WORDS[value.lower()]
+        if not isinstance(value, bool):
+            self.fail(_join(path, key), f"must be true or false, not {_describe(value)}", value, "true or false")
+        return value
+
+
+@dataclass(frozen=True)
+class _Default:
+    """A default standing in for an absent key; it is trusted, not checked."""
+
+    value: Any
+
+
+class _FromEnv(str):
+    """Text that came from an environment variable, so it may stand for a number or a boolean."""
