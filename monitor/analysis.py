@@ -1,0 +1,453 @@
+"""One period's comparison for every metric: method choice, omnibus test, effect size,
+post-hoc pairs, segment flags and assumption checks, then false-discovery control
+across the metrics.
+
+This module sits between the statistics package (pure numbers) and the pipeline
+(SQL, history, alerts). Its input is per-segment data that the source already
+checked and converted: a :class:`~monitor.stats.summary.Moments` per segment and,
+where available, the values themselves (all of them, or a bounded sample) for the
+rank test and the diagnostics that need values.
+
+Decision rules, written down once
+---------------------------------
+* A segment with fewer values than ``quality.min_rows_per_segment`` (at least 2)
+  is left out of the comparison and named in the metric's ``note``.
+* ``test: auto`` runs the assumption checks and picks the method with
+  :func:`monitor.stats.diagnostics.choose_method`; the reason is kept.
+* A metric is *significant* when its q-value (the p-value adjusted across all
+  metrics of the period by ``fdr.method``) is at most ``fdr.level``.
+* Pairs and segment flags are a second stage: they are read only inside a
+  significant metric (a gate that keeps the per-metric false discovery control
+  meaningful), at level ``alpha`` with their own within-metric adjustment.
+* A segment is flagged ``high``/``low`` when, in the post-hoc pairs, it is
+  significantly above (below) at least half of the other segments and below
+  (above) none (:func:`monitor.stats.flags.majority_of_pairs`). With a
+  ``reference`` segment, the pairs are the many-to-one family (Dunnett after
+  ANOVA) and a segment is flagged when its gap to the reference is significant.
+* Only the checks in ``relevant_checks`` (marked ``watched`` in the JSON) raise
+  assumption events; see :func:`relevant_checks`.
+* A statistic that cannot be computed is ``None`` in the output with the reason in
+  ``note``; it is never significant.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from dataclasses import dataclass, field, replace
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+
+from .config import JobConfig, MetricConfig
+from .stats import diagnostics, effects, flags, multiplicity, omnibus, posthoc
+from .stats.diagnostics import Check
+from .stats.effects import EffectSize
+from .stats.summary import Moments
+
+log = logging.getLogger(__name__)
+
+POSTHOC_FOR = {"anova": "tukey-kramer", "welch": "games-howell", "kruskal": "dunn"}
+MANY_TO_ONE_FOR = {"anova": "dunnett", "welch": "games-howell", "kruskal": "dunn"}
+
+
+@dataclass(frozen=True)
+class QualityCounts:
+    """What the source found wrong with one metric's values in one period."""
+
+    rows: int = 0  # rows in the window with a segment value
+    null: int = 0  # NULL values
+    non_numeric: int = 0  # values that are not numbers (text in a numeric column)
+    non_finite: int = 0  # inf, -inf, NaN
+    out_of_domain: int = 0  # values the transform cannot take (<= 0 under log)
+
+    @property
+    def bad(self) -> int:
+        return self.null + self.non_numeric + self.non_finite + self.out_of_domain
+
+    @property
+    def bad_share(self) -> float:
+        return self.bad / self.rows if self.rows else 0.0
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "rows": self.rows,
+            "null": self.null,
+            "non_numeric": self.non_numeric,
+            "non_finite": self.non_finite,
+            "out_of_domain": self.out_of_domain,
+            "bad_share": _num(self.bad_share),
+        }
+
+
+@dataclass(frozen=True)
+class SegmentInput:
+    """One segment's data for one metric: its summary and (optionally) its values."""
+
+    segment: str
+    moments: Moments
+    values: np.ndarray | None = None
+
+
+@dataclass(frozen=True)
+class MetricInput:
+    """Everything the analysis needs for one metric in one period."""
+
+    metric: MetricConfig
+    segments: tuple[SegmentInput, ...]
+    quality: QualityCounts = QualityCounts()
+    sample_size: int | None = None  # set when values are a sample, not all values
+
+
+@dataclass(frozen=True)
+class SegmentRow:
+    segment: str
+    n: int
+    mean: float
+    sd: float
+    flag: str | None = None
+    diff_vs_rest: float = math.nan  # descriptive: segment mean minus the mean of the other segments' records
+    above: int = 0  # other segments it is significantly above (in the post-hoc pairs)
+    below: int = 0
+    direction: str | None = None  # the pair verdict before the metric's significance gate
+    excluded: bool = False
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "segment": self.segment,
+            "n": self.n,
+            "mean": _num(self.mean),
+            "sd": _num(self.sd),
+            "flag": self.flag,
+            "diff_vs_rest": _num(self.diff_vs_rest),
+            "above": self.above,
+            "below": self.below,
+            "excluded": self.excluded,
+        }
+
+
+@dataclass(frozen=True)
+class PairRow:
+    a: str
+    b: str
+    diff: float
+    p_adj: float
+    ci_low: float = math.nan
+    ci_high: float = math.nan
+    significant: bool = False
+    log_scale: bool = False  # diff is a difference of logs: report ratios too
+
+    def to_json(self) -> dict[str, Any]:
+        out = {
+            "a": self.a,
+            "b": self.b,
+            "diff": _num(self.diff),
+            "p_adj": _num(self.p_adj),
+            "significant": self.significant,
+            "ci_low": _num(self.ci_low),
+            "ci_high": _num(self.ci_high),
+        }
+        if self.log_scale:
+            # ratio of geometric means a/b and its simultaneous interval (same family as p_adj)
+            out["ratio"] = _num(_exp(self.diff))
+            out["ratio_low"] = _num(_exp(self.ci_low))
+            out["ratio_high"] = _num(_exp(self.ci_high))
+        return out
+
+
+@dataclass(frozen=True)
+class MetricResult:
+    """The verdict for one metric in one period (the contract's ``metrics[]`` entry)."""
+
+    metric: str
+    column: str
+    requested: str
+    method: str
+    method_reason: str
+    statistic: float
+    df: tuple[float, ...]
+    p_value: float
+    effect_size: EffectSize | None
+    segments: tuple[SegmentRow, ...]
+    pairs: tuple[PairRow, ...]
+    posthoc: str | None
+    assumptions: Mapping[str, Check]
+    quality: QualityCounts
+    note: str | None = None
+    q_value: float = math.nan
+    significant: bool = False
+    unit: str | None = None
+    sample_size: int | None = None
+    extra_effects: tuple[EffectSize, ...] = field(default=())
+    reference: str | None = None
+    relevant_checks: tuple[str, ...] = ()
+
+    @property
+    def computed(self) -> bool:
+        return math.isfinite(self.p_value)
+
+    @property
+    def flagged(self) -> dict[str, str]:
+        return {s.segment: s.flag for s in self.segments if s.flag}
+
+    def to_json(self) -> dict[str, Any]:
+        out: dict[str, Any] = {
+            "metric": self.metric,
+            "column": self.column,
+            "method": self.method,
+            "method_reason": self.method_reason,
+            "statistic": _num(self.statistic),
+            "df": [_num(d) for d in self.df],
+            "p_value": _num(self.p_value),
+            "q_value": _num(self.q_value),
+            "significant": self.significant,
+            "effect_size": _effect_json(self.effect_size),
+            "other_effect_sizes": [_effect_json(e) for e in self.extra_effects],
+            "posthoc": self.posthoc,
+            "segments": [s.to_json() for s in self.segments],
+            "pairs": [p.to_json() for p in self.pairs],
+            "assumptions": {k: _check_json(c, k in self.relevant_checks) for k, c in self.assumptions.items()},
+            "data_quality": self.quality.to_json(),
+            "note": self.note,
+        }
+        if self.reference is not None:
+            out["reference"] = self.reference
+        if self.unit:
+            out["unit"] = self.unit
+        if self.sample_size is not None:
+            out["sample_size"] = self.sample_size
+        return out
+
+
+# ---------------------------------------------------------------- per metric
+
+
+def analyse_metric(data: MetricInput, job: JobConfig) -> MetricResult:
+    """Compare the segments of one metric. q-value and the gated flags come later,
+    from :func:`finalise`."""
+    m = data.metric
+    min_n = max(2, job.quality.min_rows_per_segment)
+    kept = [s for s in data.segments if s.moments.n >= min_n]
+    dropped = [s for s in data.segments if s.moments.n < min_n]
+    notes: list[str] = []
+    if dropped:
+        names = ", ".join(f"{s.segment} (n={s.moments.n})" for s in dropped)
+        notes.append(f"left out for having fewer than {min_n} values: {names}")
+
+    labels = [s.segment for s in kept]
+    groups = [s.moments for s in kept]
+    samples = [s.values if s.values is not None else np.empty(0) for s in kept]
+    has_values = all(s.values is not None for s in kept)
+
+    rows = [
+        SegmentRow(s.segment, s.moments.n, _f(s.moments.mean), _f(s.moments.sd), excluded=s not in kept)
+        for s in data.segments
+    ]
+
+    if len(kept) < 2:
+        reason = (
+            "fewer than two segments have enough values to compare"
+            if data.segments
+            else "no values in this period"
+        )
+        notes.insert(0, reason)
+        method = m.test if m.test != "auto" else "anova"
+        return MetricResult(
+            metric=m.name, column=m.column, requested=m.test, method=method,
+            method_reason="not computed: " + reason, statistic=math.nan,
+            df=(math.nan,) if method == "kruskal" else (math.nan, math.nan),
+            p_value=math.nan, effect_size=None, segments=tuple(rows), pairs=(),
+            posthoc=None, assumptions={}, quality=data.quality, note="; ".join(notes),
+            unit=m.unit, sample_size=data.sample_size,
+        )
+
+    checks: dict[str, Check] = (
+        diagnostics.run_checks(labels, groups, samples) if has_values else {}
+    )
+    if m.test == "auto":
+        choice = diagnostics.choose_method(groups, samples if has_values else None, checks, labels=labels)
+        method, reason = choice.method, choice.reason
+    else:
+        method, reason = m.test, f"set in the config (test: {m.test})"
+    if method == "kruskal" and not has_values:
+        method, reason = "welch", reason + "; values were not available for ranks, so Welch's ANOVA was used"
+
+    if method == "anova":
+        res = omnibus.fisher_anova(groups)
+    elif method == "welch":
+        res = omnibus.welch_anova(groups)
+    else:
+        res = omnibus.kruskal_wallis(samples)
+    if res.note:
+        notes.append(res.note)
+
+    extra: list[EffectSize] = []
+    if method == "kruskal":
+        effect = effects.epsilon_squared(res)
+    else:
+        effect = effects.omega_squared(res, confidence=job.posthoc.confidence)
+        extra = [effects.eta_squared(res), effects.cohens_f(res)]
+
+    reference = m.reference
+    if reference is not None and reference not in labels:
+        notes.append(f"reference segment {reference!r} has no usable values this period; "
+                     "no comparisons with it were made")
+    pairs: tuple[PairRow, ...] = ()
+    ph_name = POSTHOC_FOR[method]
+    log_scale = m.transform == "log"
+    conf = job.posthoc.confidence
+    if math.isfinite(res.statistic):
+        if reference is not None:
+            if reference in labels:
+                ph_name = MANY_TO_ONE_FOR[method]
+                ph = posthoc.many_to_one(labels, samples if method == "kruskal" else groups, reference,
+                                         ph_name, confidence=conf, adjust=job.posthoc.dunn_adjust)
+            else:
+                ph = None
+        elif method == "anova":
+            ph = posthoc.tukey_kramer(labels, groups, confidence=conf)
+        elif method == "welch":
+            ph = posthoc.games_howell(labels, groups, confidence=conf)
+        else:
+            ph = posthoc.dunn(labels, samples, adjust=job.posthoc.dunn_adjust, confidence=conf)
+        if ph is not None:
+            if ph.note:
+                notes.append(ph.note)
+            pairs = tuple(
+                PairRow(p.a, p.b, p.diff, p.p_adj, p.ci_low, p.ci_high, log_scale=log_scale) for p in ph.pairs
+            )
+        verdicts = _segment_verdicts(labels, pairs, reference, job.alpha)
+        contrasts = flags.segment_vs_rest(
+            labels, groups, samples if method == "kruskal" else None, method=method, alpha=job.alpha
+        )
+        rest = {c.segment: c.diff for c in contrasts}
+        rows = [
+            replace(r, diff_vs_rest=rest.get(r.segment, math.nan),
+                    above=verdicts[r.segment][0], below=verdicts[r.segment][1],
+                    direction=verdicts[r.segment][2])
+            if r.segment in verdicts else r
+            for r in rows
+        ]
+
+    return MetricResult(
+        metric=m.name, column=m.column, requested=m.test, method=method,
+        method_reason=reason, statistic=res.statistic, df=tuple(res.df),
+        p_value=res.p_value, effect_size=effect, segments=tuple(rows), pairs=pairs,
+        posthoc=ph_name, assumptions=checks, quality=data.quality,
+        note="; ".join(notes) or None, unit=m.unit, sample_size=data.sample_size,
+        extra_effects=tuple(extra), reference=reference,
+        relevant_checks=relevant_checks(m.test, method, groups),
+    )
+
+
+def _segment_verdicts(labels: Sequence[str], pairs: Sequence[PairRow], reference: str | None,
+                      alpha: float) -> dict[str, tuple[int, int, str | None]]:
+    """(above, below, direction) per segment, before the metric's significance gate.
+
+    Without a reference: the majority-of-pairs rule of
+    :func:`monitor.stats.flags.majority_of_pairs`. With a reference: a segment is
+    ``high``/``low`` when its gap to the reference is significant (the reference
+    itself is never flagged).
+    """
+    if reference is None:
+        verdicts = flags.majority_of_pairs(labels, [(p.a, p.b, p.diff, p.p_adj) for p in pairs], alpha)
+        return {v.segment: (v.above, v.below, v.direction) for v in verdicts}
+    out: dict[str, tuple[int, int, str | None]] = {s: (0, 0, None) for s in labels}
+    for p in pairs:
+        if math.isfinite(p.p_adj) and p.p_adj <= alpha and math.isfinite(p.diff) and p.diff != 0:
+            out[p.a] = (1, 0, "high") if p.diff > 0 else (0, 1, "low")
+    return out
+
+
+def relevant_checks(requested: str, method: str, groups: Sequence[Moments]) -> tuple[str, ...]:
+    """The assumption checks whose change is worth an event for this metric.
+
+    Equal spreads (Brown-Forsythe) matter for Fisher's ANOVA, and for ``auto``,
+    whose first choice it is. Normality matters for the ANOVAs only when some
+    segment is small (fewer than 30 values; common practice, leaning on the
+    central limit theorem for larger segments). Kruskal-Wallis, asked for
+    explicitly, assumes neither. The other checks (sd ratio, size ratio, outlier
+    share) are stored and shown but raise no events.
+    """
+    if method == "kruskal" and requested == "kruskal":
+        return ()
+    out = []
+    if requested in ("auto", "anova"):
+        out.append("brown_forsythe")
+    if groups and min(g.n for g in groups) < 30:
+        out.append("normality")
+    return tuple(out)
+
+
+# ---------------------------------------------------------------- across metrics
+
+
+def finalise(results: Sequence[MetricResult], job: JobConfig) -> tuple[MetricResult, ...]:
+    """Adjust the p-values across metrics and apply the significance gate.
+
+    q-values follow ``fdr.method`` over the metrics whose p-value could be
+    computed (see :func:`monitor.stats.multiplicity.adjust`). A metric is
+    significant when ``q <= fdr.level``; its pairs and segment flags count only
+    then, at level ``alpha``, and a segment is flagged only when its contrast
+    with the rest is significant. ``min_effect``, when set, is recorded but does
+    not change significance here (the event layer decides what to announce).
+    """
+    p = np.array([r.p_value for r in results], dtype=float)
+    q = multiplicity.adjust(p, job.fdr.method) if len(p) else p
+    out = []
+    for r, qv in zip(results, q):
+        sig = bool(math.isfinite(qv) and qv <= job.fdr.level)
+        pairs = tuple(
+            replace(pr, significant=bool(sig and math.isfinite(pr.p_adj) and pr.p_adj <= job.alpha))
+            for pr in r.pairs
+        )
+        segs = tuple(replace(s, flag=s.direction if sig else None) for s in r.segments)
+        out.append(replace(r, q_value=float(qv), significant=sig, pairs=pairs, segments=segs))
+    return tuple(out)
+
+
+def analyse_period(inputs: Sequence[MetricInput], job: JobConfig) -> tuple[MetricResult, ...]:
+    """Analyse every metric of a period and control the false discovery rate across them."""
+    return finalise([analyse_metric(d, job) for d in inputs], job)
+
+
+# ---------------------------------------------------------------- JSON helpers
+
+
+def _exp(x: float) -> float:
+    return math.exp(x) if math.isfinite(x) else math.nan
+
+
+def _f(x: Any) -> float:
+    try:
+        return float(x)
+    except (TypeError, ValueError):
+        return math.nan
+
+
+def _num(x: Any) -> float | int | None:
+    """A JSON-safe number: None for NaN/inf/None."""
+    if x is None:
+        return None
+    if isinstance(x, (bool, np.bool_)):
+        return bool(x)
+    if isinstance(x, (int, np.integer)):
+        return int(x)
+    v = float(x)
+    return v if math.isfinite(v) else None
+
+
+def _effect_json(e: EffectSize | None) -> dict[str, Any] | None:
+    if e is None:
+        return None
+    out: dict[str, Any] = {"name": e.name, "value": _num(e.value)}
+    if math.isfinite(e.ci_low) or math.isfinite(e.ci_high):
+        out["ci"] = [_num(e.ci_low), _num(e.ci_high)]
+    if e.note:
+        out["note"] = e.note
+    return out
+
+
+def _check_json(c: Check, relevant: bool) -> dict[str, Any]:
+    return {"value": _num(c.value), "threshold": _num(c.threshold), "passed": c.passed, "detail": c.detail,
+            "watched": relevant}

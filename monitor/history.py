@@ -1,0 +1,417 @@
+"""The history database: every stored period's results, its events and the alert outbox.
+
+Tables (prefix ``sw_``) are created on first use with SQLAlchemy Core, so any
+SQLAlchemy URL works; the default is a SQLite file.
+
+* ``sw_runs`` — one row per (job, period): when it was computed and with what settings.
+* ``sw_metric_results`` — one row per metric: method, statistic, p, q, effect size,
+  assumptions, data quality, plus the full JSON entry as printed by ``run --json``.
+* ``sw_segment_results`` / ``sw_pair_results`` — per segment and per pair.
+* ``sw_events`` — events, keyed by a stable hash of (job, period, kind, metric, segment).
+* ``sw_outbox`` — one row per (event, alert channel): pending, sent or dead.
+
+Storing a period is one transaction. Results of the period are replaced whole;
+events are reconciled by key, so running a period again neither duplicates an event
+nor sends an alert that was already sent (the outbox keeps its state).
+
+On SQLite the file runs in WAL mode and write transactions start with
+``BEGIN IMMEDIATE``, so two writers queue instead of failing on a lock upgrade.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Iterable, Mapping, Sequence
+
+import sqlalchemy as sa
+from sqlalchemy.engine import Engine
+from sqlalchemy.exc import SQLAlchemyError
+
+from .analysis import MetricResult
+from .db import one_line, redact
+from .errors import HistoryError
+from .events import Event
+from .periods import Period
+
+log = logging.getLogger(__name__)
+
+metadata = sa.MetaData()
+
+runs = sa.Table(
+    "sw_runs", metadata,
+    sa.Column("job", sa.String(200), primary_key=True),
+    sa.Column("period", sa.String(16), primary_key=True),
+    sa.Column("period_start", sa.String(40), nullable=False),  # ISO 8601 with offset
+    sa.Column("period_end", sa.String(40), nullable=False),
+    sa.Column("start_utc", sa.DateTime(), nullable=False, index=True),
+    sa.Column("computed_at", sa.DateTime(), nullable=False),
+    sa.Column("fingerprint", sa.String(64), nullable=False),
+    sa.Column("rows", sa.Integer, nullable=False),
+    sa.Column("null_segment_rows", sa.Integer, nullable=False),
+    sa.Column("segments", sa.Text, nullable=False),  # JSON list of segments seen
+)
+
+metric_results = sa.Table(
+    "sw_metric_results", metadata,
+    sa.Column("job", sa.String(200), primary_key=True),
+    sa.Column("period", sa.String(16), primary_key=True),
+    sa.Column("metric", sa.String(200), primary_key=True),
+    sa.Column("method", sa.String(16), nullable=False),
+    sa.Column("statistic", sa.Float),
+    sa.Column("p_value", sa.Float),
+    sa.Column("q_value", sa.Float),
+    sa.Column("significant", sa.Boolean, nullable=False),
+    sa.Column("effect_name", sa.String(40)),
+    sa.Column("effect_value", sa.Float),
+    sa.Column("payload", sa.Text, nullable=False),  # the metric's JSON entry
+)
+
+segment_results = sa.Table(
+    "sw_segment_results", metadata,
+    sa.Column("job", sa.String(200), primary_key=True),
+    sa.Column("period", sa.String(16), primary_key=True),
+    sa.Column("metric", sa.String(200), primary_key=True),
+    sa.Column("segment", sa.String(200), primary_key=True),
+    sa.Column("n", sa.Integer, nullable=False),
+    sa.Column("mean", sa.Float),
+    sa.Column("sd", sa.Float),
+    sa.Column("flag", sa.String(8)),
+)
+
+pair_results = sa.Table(
+    "sw_pair_results", metadata,
+    sa.Column("job", sa.String(200), primary_key=True),
+    sa.Column("period", sa.String(16), primary_key=True),
+    sa.Column("metric", sa.String(200), primary_key=True),
+    sa.Column("a", sa.String(200), primary_key=True),
+    sa.Column("b", sa.String(200), primary_key=True),
+    sa.Column("diff", sa.Float),
+    sa.Column("p_adj", sa.Float),
+    sa.Column("significant", sa.Boolean, nullable=False),
+)
+
+events_t = sa.Table(
+    "sw_events", metadata,
+    sa.Column("event_key", sa.String(40), primary_key=True),
+    sa.Column("job", sa.String(200), nullable=False),
+    sa.Column("period", sa.String(16), nullable=False),
+    sa.Column("kind", sa.String(32), nullable=False),
+    sa.Column("metric", sa.String(200)),
+    sa.Column("segment", sa.String(200)),
+    sa.Column("message", sa.Text, nullable=False),
+    sa.Column("detail", sa.Text, nullable=False),
+    sa.Column("detected_at", sa.DateTime(), nullable=False),
+    sa.Index("ix_sw_events_job_period", "job", "period"),
+)
+
+outbox = sa.Table(
+    "sw_outbox", metadata,
+    sa.Column("event_key", sa.String(40), primary_key=True),
+    sa.Column("channel", sa.String(400), primary_key=True),
+    sa.Column("job", sa.String(200), nullable=False),
+    sa.Column("status", sa.String(8), nullable=False),  # pending | sent | dead
+    sa.Column("attempts", sa.Integer, nullable=False, default=0),
+    sa.Column("last_error", sa.Text),
+    sa.Column("updated_at", sa.DateTime(), nullable=False),
+    sa.Index("ix_sw_outbox_status", "job", "channel", "status"),
+)
+
+
+@dataclass(frozen=True)
+class StoredPeriod:
+    """What the history holds for one earlier period: enough to derive events."""
+
+    period: str
+    segments: tuple[str, ...]
+    metrics: Mapping[str, dict[str, Any]]  # metric name -> its stored JSON entry
+
+
+@dataclass(frozen=True)
+class OutboxItem:
+    event_key: str
+    channel: str
+    attempts: int
+    event: dict[str, Any]
+
+
+def _utc_naive(dt: datetime) -> datetime:
+    return dt.astimezone(timezone.utc).replace(tzinfo=None)
+
+
+class History:
+    """Access to the history database for one job."""
+
+    def __init__(self, url: str, job: str, engine: Engine | None = None):
+        self.url = url
+        self.job = job
+        self.engine = engine or _make_engine(url)
+        self._ready = False
+
+    # -------------------------------------------------------------- set-up
+
+    def ensure(self) -> None:
+        """Create the tables if they do not exist."""
+        if self._ready:
+            return
+        try:
+            metadata.create_all(self.engine)
+        except SQLAlchemyError as exc:
+            raise HistoryError(f"cannot create the history tables at {redact(self.url)}: {one_line(exc)}") from exc
+        self._ready = True
+
+    def _begin(self):
+        self.ensure()
+        return self.engine.begin()
+
+    # -------------------------------------------------------------- writes
+
+    def store_period(
+        self,
+        period: Period,
+        results: Sequence[MetricResult],
+        events: Sequence[Event],
+        channels: Sequence[str],
+        *,
+        computed_at: datetime,
+        fingerprint: str,
+        rows: int,
+        null_segment_rows: int,
+        segments: Sequence[str],
+    ) -> list[Event]:
+        """Replace the period's results and reconcile its events, in one transaction.
+
+        Returns the events that are new to this period (those not stored by an
+        earlier run of the same period); only these get outbox rows.
+        """
+        key = {"job": self.job, "period": period.ident}
+        now = _utc_naive(computed_at)
+        try:
+            with self._begin() as conn:
+                for table in (pair_results, segment_results, metric_results, runs):
+                    conn.execute(sa.delete(table).where(table.c.job == self.job, table.c.period == period.ident))
+                conn.execute(sa.insert(runs).values(
+                    **key, period_start=period.start.isoformat(), period_end=period.end.isoformat(),
+                    start_utc=_utc_naive(period.start), computed_at=now, fingerprint=fingerprint,
+                    rows=rows, null_segment_rows=null_segment_rows, segments=json.dumps(list(segments)),
+                ))
+                if results:
+                    conn.execute(sa.insert(metric_results), [_metric_row(key, r) for r in results])
+                seg_rows = [
+                    {**key, "metric": r.metric, "segment": s.segment, "n": s.n, "mean": _fl(s.mean),
+                     "sd": _fl(s.sd), "flag": s.flag}
+                    for r in results for s in r.segments
+                ]
+                if seg_rows:
+                    conn.execute(sa.insert(segment_results), seg_rows)
+                pair_rows = [
+                    {**key, "metric": r.metric, "a": p.a, "b": p.b, "diff": _fl(p.diff),
+                     "p_adj": _fl(p.p_adj), "significant": p.significant}
+                    for r in results for p in r.pairs
+                ]
+                if pair_rows:
+                    conn.execute(sa.insert(pair_results), pair_rows)
+                return self._reconcile_events(conn, period, events, channels, now)
+        except SQLAlchemyError as exc:
+            raise HistoryError(
+                f"cannot store period {period.ident} in the history at {redact(self.url)}: {one_line(exc)}"
+            ) from exc
+
+    def _reconcile_events(self, conn, period: Period, events: Sequence[Event],
+                          channels: Sequence[str], now: datetime) -> list[Event]:
+        existing = {
+            row.event_key
+            for row in conn.execute(
+                sa.select(events_t.c.event_key).where(events_t.c.job == self.job, events_t.c.period == period.ident)
+            )
+        }
+        wanted = {e.key(self.job, period.ident): e for e in events}
+        gone = existing - wanted.keys()
+        if gone:
+            # An event that no longer holds is withdrawn; alerts not yet sent for it are dropped.
+            conn.execute(sa.delete(outbox).where(outbox.c.event_key.in_(gone), outbox.c.status != "sent"))
+            conn.execute(sa.delete(events_t).where(events_t.c.event_key.in_(gone)))
+        fresh = [e for k, e in wanted.items() if k not in existing]
+        for k, e in wanted.items():
+            if k in existing:  # same event again: keep its first detection time and delivery state
+                conn.execute(sa.update(events_t).where(events_t.c.event_key == k).values(
+                    message=e.message, detail=json.dumps(e.detail, default=str)))
+        if fresh:
+            conn.execute(sa.insert(events_t), [
+                {"event_key": e.key(self.job, period.ident), "job": self.job, "period": period.ident,
+                 "kind": e.kind, "metric": e.metric, "segment": e.segment, "message": e.message,
+                 "detail": json.dumps(e.detail, default=str), "detected_at": now}
+                for e in fresh
+            ])
+            rows = [
+                {"event_key": e.key(self.job, period.ident), "channel": ch, "job": self.job,
+                 "status": "pending", "attempts": 0, "updated_at": now}
+                for e in fresh for ch in channels
+            ]
+            if rows:
+                conn.execute(sa.insert(outbox), rows)
+        return fresh
+
+    # -------------------------------------------------------------- outbox
+
+    def pending(self, channel: str) -> list[OutboxItem]:
+        """Undelivered alerts for one channel, oldest period first."""
+        self.ensure()
+        stmt = (
+            sa.select(outbox.c.event_key, outbox.c.attempts, events_t)
+            .join(events_t, events_t.c.event_key == outbox.c.event_key)
+            .where(outbox.c.job == self.job, outbox.c.channel == channel, outbox.c.status == "pending")
+            .order_by(events_t.c.period, events_t.c.detected_at, events_t.c.kind, events_t.c.metric,
+                      events_t.c.segment)
+        )
+        with self.engine.connect() as conn:
+            rows = conn.execute(stmt).mappings().all()
+        return [OutboxItem(r["event_key"], channel, r["attempts"], _event_dict(r)) for r in rows]
+
+    def mark(self, channel: str, keys: Iterable[str], status: str, now: datetime, error: str | None = None) -> None:
+        keys = list(keys)
+        if not keys:
+            return
+        with self._begin() as conn:
+            conn.execute(
+                sa.update(outbox)
+                .where(outbox.c.channel == channel, outbox.c.event_key.in_(keys))
+                .values(status=status, attempts=outbox.c.attempts + 1, last_error=error,
+                        updated_at=_utc_naive(now))
+            )
+
+    # -------------------------------------------------------------- reads
+
+    def previous(self, period: Period) -> StoredPeriod | None:
+        """The latest stored period that starts before ``period``, if any."""
+        self.ensure()
+        with self.engine.connect() as conn:
+            run = conn.execute(
+                sa.select(runs).where(runs.c.job == self.job, runs.c.start_utc < _utc_naive(period.start))
+                .order_by(runs.c.start_utc.desc()).limit(1)
+            ).mappings().first()
+            if run is None:
+                return None
+            metrics = {
+                r.metric: json.loads(r.payload)
+                for r in conn.execute(sa.select(metric_results.c.metric, metric_results.c.payload).where(
+                    metric_results.c.job == self.job, metric_results.c.period == run["period"]))
+            }
+        return StoredPeriod(run["period"], tuple(json.loads(run["segments"])), metrics)
+
+    def periods(self) -> list[dict[str, Any]]:
+        """Every stored period of the job, oldest first."""
+        self.ensure()
+        with self.engine.connect() as conn:
+            return [dict(r) for r in conn.execute(
+                sa.select(runs).where(runs.c.job == self.job).order_by(runs.c.start_utc)).mappings()]
+
+    def metric_history(self, metric: str | None = None) -> list[dict[str, Any]]:
+        """Stored metric entries (the ``run --json`` shape) with their period, oldest first."""
+        self.ensure()
+        stmt = (
+            sa.select(metric_results.c.period, metric_results.c.payload)
+            .join(runs, sa.and_(runs.c.job == metric_results.c.job, runs.c.period == metric_results.c.period))
+            .where(metric_results.c.job == self.job)
+            .order_by(runs.c.start_utc, metric_results.c.metric)
+        )
+        if metric is not None:
+            stmt = stmt.where(metric_results.c.metric == metric)
+        with self.engine.connect() as conn:
+            return [{"period": r.period, **json.loads(r.payload)} for r in conn.execute(stmt)]
+
+    def events(self, period: str | None = None) -> list[dict[str, Any]]:
+        self.ensure()
+        stmt = sa.select(events_t).where(events_t.c.job == self.job)
+        if period is not None:
+            stmt = stmt.where(events_t.c.period == period)
+        stmt = stmt.order_by(events_t.c.period, events_t.c.kind, events_t.c.metric, events_t.c.segment)
+        with self.engine.connect() as conn:
+            return [_event_dict(r) for r in conn.execute(stmt).mappings()]
+
+    def outbox_counts(self) -> dict[str, int]:
+        self.ensure()
+        with self.engine.connect() as conn:
+            rows = conn.execute(
+                sa.select(outbox.c.status, sa.func.count()).where(outbox.c.job == self.job).group_by(outbox.c.status)
+            ).all()
+        return {status: int(n) for status, n in rows}
+
+    def describe(self) -> str:
+        """Reach the database and create the tables; return the dialect and version."""
+        self.ensure()
+        with self.engine.connect() as conn:
+            info = conn.dialect.server_version_info
+        return f"{self.engine.dialect.name} {'.'.join(map(str, info)) if info else ''}".strip()
+
+    def dispose(self) -> None:
+        self.engine.dispose()
+
+
+def _metric_row(key: Mapping[str, str], r: MetricResult) -> dict[str, Any]:
+    payload = r.to_json()
+    eff = r.effect_size
+    return {
+        **key, "metric": r.metric, "method": r.method, "statistic": _fl(r.statistic),
+        "p_value": _fl(r.p_value), "q_value": _fl(r.q_value), "significant": r.significant,
+        "effect_name": eff.name if eff else None, "effect_value": _fl(eff.value) if eff else None,
+        "payload": json.dumps(payload),
+    }
+
+
+def _event_dict(r: Mapping[str, Any]) -> dict[str, Any]:
+    detected = r["detected_at"]
+    if isinstance(detected, str):
+        detected = datetime.fromisoformat(detected)
+    return {
+        "event_key": r["event_key"], "job": r["job"], "period": r["period"], "kind": r["kind"],
+        "metric": r["metric"], "segment": r["segment"], "message": r["message"],
+        "detail": json.loads(r["detail"]) if r["detail"] else {},
+        "detected_at": detected.replace(tzinfo=timezone.utc).isoformat().replace("+00:00", "Z"),
+    }
+
+
+def _fl(x: Any) -> float | None:
+    if x is None:
+        return None
+    v = float(x)
+    return v if v == v and v not in (float("inf"), float("-inf")) else None
+
+
+def _make_engine(url: str) -> Engine:
+    try:
+        u = sa.engine.make_url(url)
+    except Exception as exc:  # noqa: BLE001
+        raise HistoryError(f"history.url: cannot parse {url!r}: {exc}") from exc
+    if u.get_backend_name() == "sqlite":
+        db = u.database
+        if db and db != ":memory:":
+            try:
+                Path(db).parent.mkdir(parents=True, exist_ok=True)
+            except OSError as exc:
+                raise HistoryError(f"cannot create the folder for the history file {db}: {exc.strerror}") from exc
+        engine = sa.create_engine(url, connect_args={"timeout": 30})
+
+        @sa.event.listens_for(engine, "connect")
+        def _on_connect(dbapi_conn, _record):  # pragma: no cover - exercised by every test
+            dbapi_conn.isolation_level = None  # let us issue BEGIN ourselves
+            cur = dbapi_conn.cursor()
+            if db and db != ":memory:":
+                cur.execute("PRAGMA journal_mode=WAL")
+            cur.execute("PRAGMA busy_timeout=30000")
+            cur.close()
+
+        @sa.event.listens_for(engine, "begin")
+        def _on_begin(conn):  # pragma: no cover
+            conn.exec_driver_sql("BEGIN IMMEDIATE")
+
+        return engine
+    try:
+        return sa.create_engine(url, pool_pre_ping=True, pool_recycle=1800)
+    except (SQLAlchemyError, ImportError) as exc:
+        raise HistoryError(f"history.url: cannot open {redact(url)}: {one_line(exc)}") from exc
+
+
