@@ -229,3 +229,58 @@ class TestDegenerate:
     def test_result_type(self, data):
         result = segment_vs_rest(LABELS, _summaries(data), None, "anova")
         assert isinstance(result, tuple) and all(isinstance(c, SegmentContrast) for c in result)
+
+
+# ---------------------------------------------------------------------------
+# majority_of_pairs: the flag rule used by the pipeline
+# ---------------------------------------------------------------------------
+
+from monitor.stats.flags import majority_of_pairs  # noqa: E402
+
+
+def _tukey_pairs(labels, samples):
+    # reference: scipy.stats.tukey_hsd supplies the adjusted family (pvalue[i, j], diff = mean_i - mean_j)
+    res = stats.tukey_hsd(*samples)
+    out = []
+    for i in range(len(labels)):
+        for j in range(i + 1, len(labels)):
+            out.append((labels[i], labels[j], float(np.mean(samples[i]) - np.mean(samples[j])),
+                        float(res.pvalue[i, j])))
+    return out
+
+
+class TestMajorityOfPairs:
+    def test_one_segment_far_above_does_not_make_the_others_low(self):
+        rng = np.random.default_rng(11)
+        labels = [f"s{i}" for i in range(8)]
+        samples = [rng.normal(10.0, 1.0, 120) for _ in labels]
+        samples[3] = samples[3] + 1.5  # only s3 differs
+        v = {x.segment: x for x in majority_of_pairs(labels, _tukey_pairs(labels, samples), 0.05)}
+        assert v["s3"].direction == "high" and v["s3"].above == 7
+        assert all(v[s].direction is None for s in labels if s != "s3")
+        # the segment-vs-rest contrast, by contrast, may call ordinary segments low here
+        assert all(v[s].below <= 1 for s in labels if s != "s3")
+
+    def test_null_data_flags_rarely(self):
+        # under the complete null the familywise error of the Tukey family bounds any flag at alpha
+        rng = np.random.default_rng(5)
+        flagged = 0
+        reps = 150
+        labels = ["a", "b", "c", "d"]
+        for _ in range(reps):
+            samples = [rng.normal(0, 1, 30) for _ in labels]
+            if any(x.direction for x in majority_of_pairs(labels, _tukey_pairs(labels, samples), 0.05)):
+                flagged += 1
+        # 0.05 + 3 Monte Carlo standard errors (sqrt(0.05*0.95/150) ~ 0.0178)
+        assert flagged / reps <= 0.05 + 3 * 0.0178
+
+    def test_conflicting_directions_are_not_flagged(self):
+        pairs = [("a", "b", 2.0, 0.001), ("a", "c", -2.0, 0.001)]
+        v = {x.segment: x for x in majority_of_pairs(["a", "b", "c"], pairs, 0.05)}
+        assert v["a"].direction is None and (v["a"].above, v["a"].below) == (1, 1)
+        assert v["b"].direction == "low" and v["c"].direction == "high"
+
+    def test_nan_pairs_count_as_not_significant(self):
+        pairs = [("a", "b", float("nan"), float("nan"))]
+        v = majority_of_pairs(["a", "b"], pairs, 0.05)
+        assert [x.direction for x in v] == [None, None]
