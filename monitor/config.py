@@ -130,10 +130,50 @@ class MetricConfig:
 
 @dataclass(frozen=True)
 class FdrConfig:
-    """Multiplicity control across the metrics of one period."""
+    """Multiplicity control across the metrics of one period.
+
+    ``pairs`` says how post-hoc pairs are read inside a significant metric:
+    ``within`` (each metric's family at ``alpha``) or ``selective`` (Benjamini &
+    Bogomolov 2014: at ``alpha * R / m``, R metrics selected out of m).
+    """
 
     method: str = "bh"
     level: float = 0.05
+    pairs: str = "within"
+
+
+@dataclass(frozen=True)
+class SamplingConfig:
+    """How values (for ranks and diagnostics) are obtained when sums are pushed down.
+
+    ``mode``: ``auto`` (all values while a period's rows fit under ``cap`` per
+    segment, a seeded random sample above that), ``full`` (always all values) or
+    ``sample`` (always a sample of at most ``cap`` per segment).
+    """
+
+    mode: str = "auto"
+    cap: int = 5000
+    seed: int = 0
+
+
+@dataclass(frozen=True)
+class ScheduleOptions:
+    """Scheduling knobs: wait ``settle_minutes`` after a period closes before computing
+    it (late data), and recompute the last ``lookback`` closed periods on every tick."""
+
+    settle_minutes: int = 0
+    lookback: int = 0
+
+
+@dataclass(frozen=True)
+class ReportConfig:
+    """Report settings: how many periods the trend pictures cover, where ``serve``
+    writes a report after each run (``path`` may contain ``{period}``), and whether
+    the email digest attaches it."""
+
+    periods: int = 12
+    path: Path | None = None
+    attach: bool = False
 
 
 @dataclass(frozen=True, repr=False)
@@ -254,6 +294,12 @@ class JobConfig:
     quality: QualityConfig
     posthoc: PosthocConfig
     alpha: float = 0.05
+    compute: str = "pushdown"
+    sampling: SamplingConfig = SamplingConfig()
+    confirm: int = 1
+    power: float = 0.8
+    scheduling: ScheduleOptions = ScheduleOptions()
+    report: ReportConfig = ReportConfig()
 
     @property
     def zone(self) -> ZoneInfo:
@@ -278,7 +324,9 @@ def config_hash(cfg: JobConfig) -> str:
         "metrics": sorted(
             [m.name, m.column, m.test, m.reference, m.transform, m.min_effect] for m in cfg.metrics
         ),
-        "fdr": [cfg.fdr.method, cfg.fdr.level],
+        "fdr": [cfg.fdr.method, cfg.fdr.level, cfg.fdr.pairs],
+        "sampling": [cfg.sampling.mode, cfg.sampling.cap, cfg.sampling.seed],
+        "confirm": cfg.confirm,
         "alpha": cfg.alpha,
         "posthoc": [cfg.posthoc.dunn_adjust, cfg.posthoc.confidence],
         "quality": [cfg.quality.max_bad_share, cfg.quality.min_rows_per_segment],
@@ -367,7 +415,8 @@ _Loader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _constru
 # -- validation --------------------------------------------------------------------------
 
 _TOP_KEYS = ("job", "source", "period", "timezone", "metrics", "fdr", "history", "alerts",
-             "schedule", "quality", "posthoc", "alpha")
+             "schedule", "quality", "posthoc", "alpha", "compute", "sampling", "confirm", "power",
+             "scheduling", "report")
 _SOURCE_KEYS = ("url", "table", "query", "time_column", "segment_column", "naive_time")
 _METRIC_KEYS = ("column", "name", "test", "reference", "transform", "unit", "decimals", "min_effect", "label")
 _ALERT_KEYS = {
@@ -408,7 +457,11 @@ def parse_config(data: Mapping, path: str | os.PathLike[str], environ: Mapping[s
     period = r.choice(top, "period", "", PERIOD_KINDS, "period kind")
     timezone = _timezone(r, top)
     metrics = _metrics(r, top, source)
-    fdr = r.section(top, "fdr", "", ("method", "level"))
+    fdr = r.section(top, "fdr", "", ("method", "level", "pairs"))
+    sampling = r.section(top, "sampling", "", ("mode", "cap", "seed"))
+    scheduling = r.section(top, "scheduling", "", ("settle_minutes", "lookback"))
+    report = r.section(top, "report", "", ("periods", "path", "attach"))
+    report_path = r.text(report, "path", "report", "a file path, may contain {period}", default=None)
     history = r.section(top, "history", "", ("url",))
     quality = r.section(top, "quality", "", ("max_bad_share", "min_rows_per_segment"))
     posthoc = r.section(top, "posthoc", "", ("dunn_adjust", "confidence"))
@@ -423,6 +476,7 @@ def parse_config(data: Mapping, path: str | os.PathLike[str], environ: Mapping[s
         fdr=FdrConfig(
             method=r.choice(fdr, "method", "fdr", ADJUSTMENTS, "FDR method", default="bh"),
             level=r.number(fdr, "level", "fdr", _open_unit, "a number between 0 and 1, e.g. 0.05", default=0.05),
+            pairs=r.choice(fdr, "pairs", "fdr", ("within", "selective"), "pair reading", default="within"),
         ),
         history=HistoryConfig(url=_db_url(r, history, "url", "history", default=default_history)),
         alerts=_alerts(r, top),
@@ -439,6 +493,28 @@ def parse_config(data: Mapping, path: str | os.PathLike[str], environ: Mapping[s
                                 "a level between 0 and 1, e.g. 0.95", default=0.95),
         ),
         alpha=r.number(top, "alpha", "", _open_unit, "a number between 0 and 1, e.g. 0.05", default=0.05),
+        compute=r.choice(top, "compute", "", ("pushdown", "local"), "compute mode", default="pushdown"),
+        sampling=SamplingConfig(
+            mode=r.choice(sampling, "mode", "sampling", ("auto", "full", "sample"), "sampling mode", default="auto"),
+            cap=r.integer(sampling, "cap", "sampling", lambda x: x >= 10, "a whole number of at least 10",
+                          default=5000),
+            seed=r.integer(sampling, "seed", "sampling", lambda x: x >= 0, "a whole number of at least 0",
+                           default=0),
+        ),
+        confirm=r.integer(top, "confirm", "", lambda x: 1 <= x <= 52, "a whole number from 1 to 52", default=1),
+        power=r.number(top, "power", "", _open_unit, "a probability between 0 and 1, e.g. 0.8", default=0.8),
+        scheduling=ScheduleOptions(
+            settle_minutes=r.integer(scheduling, "settle_minutes", "scheduling", lambda x: 0 <= x <= 60 * 24 * 31,
+                                     "minutes from 0 to 44640", default=0),
+            lookback=r.integer(scheduling, "lookback", "scheduling", lambda x: 0 <= x <= 52,
+                               "a number of periods from 0 to 52", default=0),
+        ),
+        report=ReportConfig(
+            periods=r.integer(report, "periods", "report", lambda x: 1 <= x <= 520, "a whole number from 1 to 520",
+                              default=12),
+            path=r.folder_path(report_path) if report_path else None,
+            attach=r.boolean(report, "attach", "report", default=False),
+        ),
     )
 
 

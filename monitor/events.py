@@ -185,6 +185,14 @@ def derive_events(
                     f"too few to compare (at least {max(2, job.quality.min_rows_per_segment)} needed).",
                     {"problem": "too_few_rows", "n": s.n}, subject="too_few_rows"))
 
+        if m is not None and m.reference is not None and m.reference not in {
+                x.segment for x in r.segments if not x.excluded}:
+            out.append(Event(
+                "data_quality", r.metric, m.reference,
+                f"{r.metric}: the reference {seg_word} {m.reference} has no usable values this period, "
+                f"so no gaps to it were computed.",
+                {"problem": "reference_missing", "reference": m.reference}, subject="reference_missing"))
+
         # metric-level significance
         was = baseline.significant.get(r.metric, False)
         eff = r.effect_size.value if r.effect_size else math.nan

@@ -287,20 +287,27 @@ class History:
 
     def previous(self, period: Period) -> StoredPeriod | None:
         """The latest stored period that starts before ``period``, if any."""
+        found = self.recent(period, 1)
+        return found[0] if found else None
+
+    def recent(self, period: Period, count: int) -> list[StoredPeriod]:
+        """Up to ``count`` stored periods that start before ``period``, newest first."""
         self.ensure()
         with self.engine.connect() as conn:
-            run = conn.execute(
-                sa.select(runs).where(runs.c.job == self.job, runs.c.start_utc < _utc_naive(period.start))
-                .order_by(runs.c.start_utc.desc()).limit(1)
-            ).mappings().first()
-            if run is None:
-                return None
-            metrics = {
-                r.metric: json.loads(r.payload)
-                for r in conn.execute(sa.select(metric_results.c.metric, metric_results.c.payload).where(
-                    metric_results.c.job == self.job, metric_results.c.period == run["period"]))
-            }
-        return StoredPeriod(run["period"], tuple(json.loads(run["segments"])), metrics)
+            found = conn.execute(
+                sa.select(runs.c.period, runs.c.segments)
+                .where(runs.c.job == self.job, runs.c.start_utc < _utc_naive(period.start))
+                .order_by(runs.c.start_utc.desc()).limit(count)
+            ).all()
+            if not found:
+                return []
+            payloads: dict[str, dict[str, Any]] = {p: {} for p, _ in found}
+            for r in conn.execute(
+                sa.select(metric_results.c.period, metric_results.c.metric, metric_results.c.payload).where(
+                    metric_results.c.job == self.job, metric_results.c.period.in_(list(payloads)))
+            ):
+                payloads[r.period][r.metric] = json.loads(r.payload)
+        return [StoredPeriod(p, tuple(json.loads(segs)), payloads[p]) for p, segs in found]
 
     def periods(self) -> list[dict[str, Any]]:
         """Every stored period of the job, oldest first."""

@@ -233,12 +233,12 @@ def test_objects_are_frozen_and_hashable(tmp_path):
         pytest.param(
             {"metric": ["x"]},
             "metric: unknown key; did you mean 'metrics'? (given: 'metric'; accepted: job, source, period, "
-            "timezone, metrics, fdr, history, alerts, schedule, quality, posthoc, alpha)",
+            "timezone, metrics, fdr, history, alerts, schedule, quality, posthoc, alpha, compute, sampling, confirm, power, scheduling, report)",
             id="top-level-typo"),
         pytest.param(
             {"colour": "red"},
             "colour: unknown key (given: 'colour'; accepted: job, source, period, timezone, metrics, fdr, "
-            "history, alerts, schedule, quality, posthoc, alpha)",
+            "history, alerts, schedule, quality, posthoc, alpha, compute, sampling, confirm, power, scheduling, report)",
             id="top-level-unknown"),
         pytest.param(
             {"source": source(tabel="x")},
@@ -425,7 +425,7 @@ def test_objects_are_frozen_and_hashable(tmp_path):
             id="fdr-level-nan"),
         pytest.param(
             {"fdr": ["bh"]},
-            "fdr: must be a mapping, not a list (given: ['bh']; accepted: a mapping with keys method, level)",
+            "fdr: must be a mapping, not a list (given: ['bh']; accepted: a mapping with keys method, level, pairs)",
             id="fdr-list"),
         pytest.param(
             {"alpha": True},
@@ -967,3 +967,44 @@ class TestFingerprint:
         base = parse(tmp_path, metrics=self.METRICS).fingerprint
         changes = {"metrics": self.METRICS, **change}
         assert parse(tmp_path, **changes).fingerprint != base
+
+
+# -- the keys added for push-down, sampling, persistence, scheduling and reports -------------------
+
+
+def test_extension_keys_defaults_and_values(tmp_path):
+    base = {"source": {"url": "sqlite:///x.sqlite", "table": "t", "time_column": "ts", "segment_column": "g"},
+            "period": "week", "timezone": "UTC", "metrics": ["y"]}
+    cfg = parse_config(base, tmp_path / "j.yaml", environ={})
+    assert (cfg.compute, cfg.confirm, cfg.power, cfg.fdr.pairs) == ("pushdown", 1, 0.8, "within")
+    assert (cfg.sampling.mode, cfg.sampling.cap, cfg.sampling.seed) == ("auto", 5000, 0)
+    assert (cfg.scheduling.settle_minutes, cfg.scheduling.lookback) == (0, 0)
+    assert (cfg.report.periods, cfg.report.path, cfg.report.attach) == (12, None, False)
+    full = dict(base, compute="local", confirm=2, power=0.9, fdr={"pairs": "selective"},
+                sampling={"mode": "sample", "cap": 200, "seed": 7},
+                scheduling={"settle_minutes": 90, "lookback": 2},
+                report={"periods": 8, "path": "out/{period}.html", "attach": True})
+    cfg = parse_config(full, tmp_path / "j.yaml", environ={})
+    assert (cfg.compute, cfg.confirm, cfg.power, cfg.fdr.pairs) == ("local", 2, 0.9, "selective")
+    assert (cfg.sampling.mode, cfg.sampling.cap, cfg.sampling.seed) == ("sample", 200, 7)
+    assert (cfg.scheduling.settle_minutes, cfg.scheduling.lookback) == (90, 2)
+    assert cfg.report.path == tmp_path / "out" / "{period}.html" and cfg.report.attach is True
+    assert cfg.fingerprint != parse_config(base, tmp_path / "j.yaml", environ={}).fingerprint
+
+
+@pytest.mark.parametrize(("changes", "message"), [
+    ({"compute": "remote"},
+     "compute: unknown compute mode (given: 'remote'; accepted: pushdown, local)"),
+    ({"confirm": 0}, "confirm: is out of range (given: 0; accepted: a whole number from 1 to 52)"),
+    ({"sampling": {"cap": 5}}, "sampling.cap: is out of range (given: 5; accepted: a whole number of at least 10)"),
+    ({"fdr": {"pairs": "all"}},
+     "fdr.pairs: unknown pair reading (given: 'all'; accepted: within, selective)"),
+    ({"scheduling": {"lookback": -1}},
+     "scheduling.lookback: is out of range (given: -1; accepted: a number of periods from 0 to 52)"),
+])
+def test_extension_keys_bad_values(tmp_path, changes, message):
+    base = {"source": {"url": "sqlite:///x.sqlite", "table": "t", "time_column": "ts", "segment_column": "g"},
+            "period": "week", "timezone": "UTC", "metrics": ["y"], **changes}
+    with pytest.raises(ConfigError) as err:
+        parse_config(base, tmp_path / "j.yaml", environ={})
+    assert str(err.value) == f"{tmp_path / 'j.yaml'}: {message}"
