@@ -40,7 +40,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from .config import JobConfig, MetricConfig
-from .stats import diagnostics, effects, flags, multiplicity, omnibus, posthoc
+from .stats import diagnostics, effects, flags, multiplicity, omnibus, posthoc, power
 from .stats.diagnostics import Check
 from .stats.effects import EffectSize
 from .stats.summary import Moments
@@ -49,6 +49,23 @@ log = logging.getLogger(__name__)
 
 POSTHOC_FOR = {"anova": "tukey-kramer", "welch": "games-howell", "kruskal": "dunn"}
 MANY_TO_ONE_FOR = {"anova": "dunnett", "welch": "games-howell", "kruskal": "dunn"}
+
+#: Per-segment quantiles kept for box plots: 5%, 25%, median, 75%, 95% (whiskers at 5% and 95%).
+QUANTILE_LEVELS = (0.05, 0.25, 0.50, 0.75, 0.95)
+QUANTILE_KEYS = ("q05", "q25", "q50", "q75", "q95")
+
+
+def segment_quantiles(values: np.ndarray | None) -> tuple[float, ...]:
+    """The :data:`QUANTILE_LEVELS` of one segment's values, or ``()`` when there are none.
+
+    Linear interpolation between order statistics (Hyndman & Fan 1996, definition 7;
+    numpy's default). The values are on the analysed scale (after ``transform``), all
+    of them when read locally, or the bounded random sample when sums are pushed down,
+    in which case the quantiles are estimates.
+    """
+    if values is None or len(values) == 0:
+        return ()
+    return tuple(float(x) for x in np.quantile(np.asarray(values, dtype=float), QUANTILE_LEVELS))
 
 
 @dataclass(frozen=True)
@@ -78,6 +95,31 @@ class QualityCounts:
             "out_of_domain": self.out_of_domain,
             "bad_share": _num(self.bad_share),
         }
+
+
+@dataclass(frozen=True)
+class Sensitivity:
+    """What Fisher's ANOVA could detect with this period's segment sizes.
+
+    ``min_f`` is the smallest Cohen's f detected with probability ``power`` at level
+    ``alpha``; ``min_diff`` the same in the metric's units (f times the pooled sd:
+    the sd of the segment means that would be detected). ``underpowered`` is set when
+    ``min_f`` exceeds ``threshold_f``, the practical threshold (``min_effect``
+    converted from omega squared, f = sqrt(w / (1 - w)); Cohen's medium f = 0.25
+    when ``min_effect`` is not set, common practice).
+    """
+
+    power: float
+    alpha: float
+    min_f: float
+    min_diff: float
+    threshold_f: float
+    underpowered: bool
+
+    def to_json(self) -> dict[str, Any]:
+        return {"power": self.power, "alpha": _num(self.alpha), "min_detectable_f": _num(self.min_f),
+                "min_detectable_diff": _num(self.min_diff), "threshold_f": _num(self.threshold_f),
+                "underpowered": self.underpowered}
 
 
 @dataclass(frozen=True)
@@ -111,6 +153,7 @@ class SegmentRow:
     below: int = 0
     direction: str | None = None  # the pair verdict before the metric's significance gate
     excluded: bool = False
+    quantiles: tuple[float, ...] = ()  # at QUANTILE_LEVELS; () when no values were available
 
     def to_json(self) -> dict[str, Any]:
         return {
@@ -123,6 +166,7 @@ class SegmentRow:
             "above": self.above,
             "below": self.below,
             "excluded": self.excluded,
+            "quantiles": dict(zip(QUANTILE_KEYS, map(_num, self.quantiles))) if self.quantiles else None,
         }
 
 
@@ -181,6 +225,8 @@ class MetricResult:
     extra_effects: tuple[EffectSize, ...] = field(default=())
     reference: str | None = None
     relevant_checks: tuple[str, ...] = ()
+    sensitivity: Sensitivity | None = None
+    pair_level: float = math.nan  # the level pairs and flags were read at
 
     @property
     def computed(self) -> bool:
@@ -204,12 +250,15 @@ class MetricResult:
             "effect_size": _effect_json(self.effect_size),
             "other_effect_sizes": [_effect_json(e) for e in self.extra_effects],
             "posthoc": self.posthoc,
+            "pair_level": _num(self.pair_level),
             "segments": [s.to_json() for s in self.segments],
             "pairs": [p.to_json() for p in self.pairs],
             "assumptions": {k: _check_json(c, k in self.relevant_checks) for k, c in self.assumptions.items()},
             "data_quality": self.quality.to_json(),
             "note": self.note,
         }
+        if self.sensitivity is not None:
+            out["sensitivity"] = self.sensitivity.to_json()
         if self.reference is not None:
             out["reference"] = self.reference
         if self.unit:
@@ -222,7 +271,11 @@ class MetricResult:
 # ---------------------------------------------------------------- per metric
 
 
-def analyse_metric(data: MetricInput, job: JobConfig) -> MetricResult:
+MAX_PAIR_SEGMENTS = 100  # beyond this many segments, pairs are skipped (k(k-1)/2 grows too fast)
+DEFAULT_THRESHOLD_F = 0.25  # Cohen's "medium" f (common practice)
+
+
+def analyse_metric(data: MetricInput, job: JobConfig, n_metrics: int = 1) -> MetricResult:
     """Compare the segments of one metric. q-value and the gated flags come later,
     from :func:`finalise`."""
     m = data.metric
@@ -240,7 +293,8 @@ def analyse_metric(data: MetricInput, job: JobConfig) -> MetricResult:
     has_values = all(s.values is not None for s in kept)
 
     rows = [
-        SegmentRow(s.segment, s.moments.n, _f(s.moments.mean), _f(s.moments.sd), excluded=s not in kept)
+        SegmentRow(s.segment, s.moments.n, _f(s.moments.mean), _f(s.moments.sd), excluded=s.moments.n < min_n,
+                   quantiles=segment_quantiles(s.values))
         for s in data.segments
     ]
 
@@ -304,6 +358,11 @@ def analyse_metric(data: MetricInput, job: JobConfig) -> MetricResult:
                                          ph_name, confidence=conf, adjust=job.posthoc.dunn_adjust)
             else:
                 ph = None
+        elif len(labels) > MAX_PAIR_SEGMENTS:
+            ph = None
+            ph_name = None
+            notes.append(f"{len(labels)} segments: more than {MAX_PAIR_SEGMENTS}, so no pairwise comparisons "
+                         "were made; segments are flagged by their contrast with the rest instead")
         elif method == "anova":
             ph = posthoc.tukey_kramer(labels, groups, confidence=conf)
         elif method == "welch":
@@ -316,10 +375,14 @@ def analyse_metric(data: MetricInput, job: JobConfig) -> MetricResult:
             pairs = tuple(
                 PairRow(p.a, p.b, p.diff, p.p_adj, p.ci_low, p.ci_high, log_scale=log_scale) for p in ph.pairs
             )
-        verdicts = _segment_verdicts(labels, pairs, reference, job.alpha)
         contrasts = flags.segment_vs_rest(
             labels, groups, samples if method == "kruskal" else None, method=method, alpha=job.alpha
         )
+        if ph_name is None:
+            verdicts = {c.segment: (int(c.direction == "high"), int(c.direction == "low"), c.direction)
+                        for c in contrasts}
+        else:
+            verdicts = _segment_verdicts(labels, pairs, reference, job.alpha)
         rest = {c.segment: c.diff for c in contrasts}
         rows = [
             replace(r, diff_vs_rest=rest.get(r.segment, math.nan),
@@ -337,7 +400,29 @@ def analyse_metric(data: MetricInput, job: JobConfig) -> MetricResult:
         note="; ".join(notes) or None, unit=m.unit, sample_size=data.sample_size,
         extra_effects=tuple(extra), reference=reference,
         relevant_checks=relevant_checks(m.test, method, groups),
+        sensitivity=sensitivity(groups, job, n_metrics, m.min_effect),
     )
+
+
+def sensitivity(groups: Sequence[Moments], job: JobConfig, n_metrics: int,
+                min_effect: float | None = None) -> Sensitivity | None:
+    """The minimum detectable effect for these segment sizes (see :class:`Sensitivity`).
+
+    The level is ``fdr.level / m`` for m metrics: the threshold a lone discovery
+    must pass under Benjamini-Hochberg (and Holm, Bonferroni), so "detectable"
+    means detectable even when nothing else in the period is.
+    """
+    sizes = [g.n for g in groups]
+    if len(sizes) < 2 or sum(sizes) - len(sizes) < 1:
+        return None
+    alpha = job.fdr.level / max(1, n_metrics) if job.fdr.method != "none" else job.fdr.level
+    min_f = power.minimum_detectable_f(sizes, alpha=alpha, power=job.power)
+    df_within = sum(sizes) - len(sizes)
+    pooled_sd = math.sqrt(float(sum(_f(g.m2) for g in groups)) / df_within)
+    min_diff = min_f * pooled_sd if math.isfinite(min_f) else math.nan
+    threshold = math.sqrt(min_effect / (1 - min_effect)) if min_effect else DEFAULT_THRESHOLD_F
+    return Sensitivity(job.power, alpha, min_f, min_diff, threshold,
+                       bool(math.isfinite(min_f) and min_f > threshold))
 
 
 def _segment_verdicts(labels: Sequence[str], pairs: Sequence[PairRow], reference: str | None,
@@ -388,27 +473,48 @@ def finalise(results: Sequence[MetricResult], job: JobConfig) -> tuple[MetricRes
     q-values follow ``fdr.method`` over the metrics whose p-value could be
     computed (see :func:`monitor.stats.multiplicity.adjust`). A metric is
     significant when ``q <= fdr.level``; its pairs and segment flags count only
-    then, at level ``alpha``, and a segment is flagged only when its contrast
-    with the rest is significant. ``min_effect``, when set, is recorded but does
-    not change significance here (the event layer decides what to announce).
+    then. Pairs are read at level ``alpha`` (``fdr.pairs: within``: each metric's
+    post-hoc family keeps its own familywise error rate), or at ``alpha * R / m``
+    with R of m metrics selected (``fdr.pairs: selective``: Benjamini & Bogomolov
+    2014, which bounds the expected average error rate over the selected metrics'
+    families). ``min_effect``, when set, is recorded but does not change
+    significance here (the event layer decides what to announce).
+
+    References
+    ----------
+    Benjamini, Y. and Bogomolov, M. (2014). Selective inference on multiple
+    families of hypotheses. JRSS B 76(1), 297-318.
     """
     p = np.array([r.p_value for r in results], dtype=float)
     q = multiplicity.adjust(p, job.fdr.method) if len(p) else p
+    sig_all = [bool(math.isfinite(qv) and qv <= job.fdr.level) for qv in q]
+    m = int(np.isfinite(p).sum())
+    level = job.alpha
+    if job.fdr.pairs == "selective" and m:
+        level = job.alpha * sum(sig_all) / m
     out = []
-    for r, qv in zip(results, q):
-        sig = bool(math.isfinite(qv) and qv <= job.fdr.level)
+    for r, qv, sig in zip(results, q, sig_all):
         pairs = tuple(
-            replace(pr, significant=bool(sig and math.isfinite(pr.p_adj) and pr.p_adj <= job.alpha))
+            replace(pr, significant=bool(sig and math.isfinite(pr.p_adj) and pr.p_adj <= level))
             for pr in r.pairs
         )
-        segs = tuple(replace(s, flag=s.direction if sig else None) for s in r.segments)
-        out.append(replace(r, q_value=float(qv), significant=sig, pairs=pairs, segments=segs))
+        segs = r.segments
+        if level != job.alpha and r.posthoc is not None:
+            labels = [s.segment for s in r.segments if not s.excluded and s.n > 0]
+            verdicts = _segment_verdicts(labels, r.pairs, r.reference, level)
+            segs = tuple(
+                replace(s, above=verdicts[s.segment][0], below=verdicts[s.segment][1],
+                        direction=verdicts[s.segment][2]) if s.segment in verdicts else s
+                for s in segs
+            )
+        segs = tuple(replace(s, flag=s.direction if sig else None) for s in segs)
+        out.append(replace(r, q_value=float(qv), significant=sig, pairs=pairs, segments=segs, pair_level=level))
     return tuple(out)
 
 
 def analyse_period(inputs: Sequence[MetricInput], job: JobConfig) -> tuple[MetricResult, ...]:
     """Analyse every metric of a period and control the false discovery rate across them."""
-    return finalise([analyse_metric(d, job) for d in inputs], job)
+    return finalise([analyse_metric(d, job, len(inputs)) for d in inputs], job)
 
 
 # ---------------------------------------------------------------- JSON helpers

@@ -252,10 +252,19 @@ def _common_degenerate(labels: tuple[str, ...], sizes: Sequence[int]) -> tuple[l
     return notes, False
 
 
-def _rest_mean(summaries: list[_Summary], i: int) -> tuple[int, float]:
-    rest = [s for j, s in enumerate(summaries) if j != i and s.n > 0]
-    n_rest = sum(s.n for s in rest)
-    return n_rest, sum(s.n * s.mean for s in rest) / n_rest
+def _rest_totals(summaries: list[_Summary]) -> tuple[np.ndarray, np.ndarray]:
+    """Per segment: the size and mean of the pooled records of all *other* segments.
+
+    Computed from the totals (one pass, so k segments cost O(k), not O(k^2)); the
+    rest's mean is the n-weighted mean of the other segments' means.
+    """
+    n = np.array([s.n for s in summaries], dtype=float)
+    mean = np.array([s.mean if s.n > 0 else 0.0 for s in summaries], dtype=float)
+    weighted = n * mean
+    n_rest = n.sum() - n
+    with np.errstate(all="ignore"):
+        mean_rest = (math.fsum(weighted) - weighted) / n_rest
+    return n_rest, mean_rest
 
 
 def _anova_contrasts(labels, summaries):
@@ -266,9 +275,8 @@ def _anova_contrasts(labels, summaries):
     df = big_n - k
     if too_few:
         return [_nan_raw() for _ in summaries], notes
-    diffs = []
-    for i, s in enumerate(summaries):
-        diffs.append(s.mean - _rest_mean(summaries, i)[1] if s.n > 0 else _NAN)
+    n_rest, mean_rest = _rest_totals(summaries)
+    diffs = [s.mean - mean_rest[i] if s.n > 0 else _NAN for i, s in enumerate(summaries)]
     reason = None
     if df < 1:
         reason = "Every segment has a single record, so the within-segment variance is undefined."
@@ -279,32 +287,45 @@ def _anova_contrasts(labels, summaries):
         return ([_nan_raw(d, df_out) for d in diffs],
                 [notes[i] or reason for i in range(len(summaries))])
     mse = sum(s.m2 for s in present) / df
+    n = np.array(sizes, dtype=float)
+    with np.errstate(all="ignore"):
+        se = np.sqrt(mse * (1.0 / n + 1.0 / n_rest))
+        t = np.asarray(diffs) / se
+        p = 2.0 * stats.t.sf(np.abs(t), df)
     raw = []
     for i, s in enumerate(summaries):
         if s.n == 0:
             raw.append(_nan_raw())
             continue
-        n_rest, _ = _rest_mean(summaries, i)
-        se = math.sqrt(mse * (1.0 / s.n + 1.0 / n_rest))
-        t = diffs[i] / se
-        p = _clip_p(2.0 * float(stats.t.sf(abs(t), df)))
-        raw.append((diffs[i], se, t, float(df), p))
+        raw.append((diffs[i], float(se[i]), float(t[i]), float(df), _clip_p(float(p[i]))))
     return raw, notes
 
 
 def _welch_contrasts(labels, summaries):
+    """Welch-type contrast of each segment with the rest.
+
+    The contrast's variance has terms c_l^2 s_l^2 / n_l with c_i = 1 and
+    c_j = -n_j / N_rest; with u_j = n_j s_j^2 (so that (n_j/N_r)^2 s_j^2/n_j =
+    u_j / N_r^2) the sums over j != i are the totals less segment i's own term,
+    which keeps the whole computation O(k). Satterthwaite's df uses the same
+    terms.
+    """
     sizes = [s.n for s in summaries]
     notes, too_few = _common_degenerate(labels, sizes)
     if too_few:
         return [_nan_raw() for _ in summaries], notes
+    n_rest, mean_rest = _rest_totals(summaries)
     single = [labels[j] for j, s in enumerate(summaries) if s.n == 1]
+    present = [s for s in summaries if s.n > 0]
+    u = np.array([s.n * s.var if s.n > 1 else 0.0 for s in summaries])
+    w = np.array([(s.n * s.var) ** 2 / (s.n - 1) if s.n > 1 else 0.0 for s in summaries])
+    u_total, w_total = math.fsum(u), math.fsum(w)
     raw = []
     for i, s in enumerate(summaries):
         if s.n == 0:
             raw.append(_nan_raw())
             continue
-        n_rest, mean_rest = _rest_mean(summaries, i)
-        diff = s.mean - mean_rest
+        diff = s.mean - float(mean_rest[i])
         if single:
             one = len(single) == 1
             who = _name_list(single)
@@ -316,19 +337,16 @@ def _welch_contrasts(labels, summaries):
             )
             raw.append(_nan_raw(diff))
             continue
-        # Terms c_l^2 s_l^2 / n_l of the contrast's variance (c_i = 1, c_j = -n_j/N_r).
-        terms = []
-        for j, g in enumerate(summaries):
-            if g.n == 0:
-                continue
-            coef = 1.0 if j == i else g.n / n_rest
-            terms.append((coef * coef * g.var / g.n, g.n))
-        var = sum(t for t, _ in terms)
-        if not var > 0.0:
+        nr = float(n_rest[i])
+        own = s.var / s.n
+        rest_var = max(u_total - u[i], 0.0) / (nr * nr)
+        var = own + rest_var
+        if not var > 0.0 or all(g.flat for g in present):
             notes[i] = notes[i] or "No segment varies within itself (zero variance), so the contrast is undefined."
             raw.append(_nan_raw(diff))
             continue
-        df = var * var / sum(t * t / (n - 1) for t, n in terms)
+        denom = own * own / (s.n - 1) + max(w_total - w[i], 0.0) / nr ** 4
+        df = var * var / denom
         se = math.sqrt(var)
         t = diff / se
         p = _clip_p(2.0 * float(stats.t.sf(abs(t), df)))
