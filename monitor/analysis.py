@@ -348,7 +348,7 @@ def analyse_metric(data: MetricInput, job: JobConfig, n_metrics: int = 1) -> Met
                      "no comparisons with it were made")
     pairs: tuple[PairRow, ...] = ()
     ph_name = POSTHOC_FOR[method]
-    log_scale = m.transform == "log"
+    log_scale = m.transform == "log" and method != "kruskal"  # Dunn diffs are mean-rank differences
     conf = job.posthoc.confidence
     if math.isfinite(res.statistic):
         if reference is not None:
