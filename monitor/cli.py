@@ -13,11 +13,13 @@ import logging
 import math
 import sys
 import traceback
+from pathlib import Path
 from typing import Any, Sequence, TextIO
 
 from . import __version__
 from .config import load_config
 from .errors import SegwatchError, UsageError
+from .ledger import PeriodBusy
 from .runner import Job, PeriodReport
 
 log = logging.getLogger(__name__)
@@ -27,6 +29,9 @@ EXAMPLES = {
     "backfill": "segwatch backfill configs/demo.yaml --from 2026-W01 --to 2026-W26",
     "history": "segwatch history configs/demo.yaml --metric dwell_hours",
     "check": "segwatch check configs/demo.yaml",
+    "report": "segwatch report configs/demo.yaml --period 2026-W20 --out reports/2026-W20.html",
+    "serve": "segwatch serve configs/demo.yaml configs/pricing.yaml",
+    "alerts": "segwatch alerts configs/demo.yaml --retry",
 }
 
 
@@ -64,6 +69,24 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print the stored entries as JSON")
 
     add("check", "validate the config and reach the source and history databases")
+
+    p = add("report", "write a self-contained HTML report of one stored period (reads the history only)")
+    p.add_argument("--period", metavar="ID", help="a stored period (default: the latest stored one)")
+    p.add_argument("--periods", type=int, metavar="N",
+                   help="how many stored periods the pictures over time cover (default: report.periods, 12)")
+    p.add_argument("--out", metavar="FILE", required=True, help="the HTML file to write (replaced if it exists)")
+
+    p = sub.add_parser("serve", help="run every job on its schedule until SIGINT/SIGTERM, catching up missed periods",
+                       description="Run every job on its cron `schedule` (read in UTC) until SIGINT/SIGTERM; "
+                                   "at start and on every tick, compute each closed period not yet done.",
+                       parents=[common], epilog=f"example: {EXAMPLES['serve']}")
+    p.add_argument("configs", nargs="+", metavar="CONFIG", help="job YAML config files, one job each")
+    p.add_argument("--retry-minutes", type=float, default=5.0, metavar="N",
+                   help="retry failed periods and undelivered alerts every N minutes (default 5)")
+
+    p = add("alerts", "list undelivered (pending) and dead-lettered alerts; --retry sends them now")
+    p.add_argument("--retry", action="store_true", help="send pending and dead alerts again now, ignoring backoff")
+    p.add_argument("--json", action="store_true", help="print the alerts as one JSON document")
     return parser
 
 
@@ -74,6 +97,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     logging.basicConfig(level=level, stream=sys.stderr, format="%(levelname)s %(name)s: %(message)s")
     try:
         return COMMANDS[args.command](args, sys.stdout)
+    except PeriodBusy as exc:  # another process is computing it: say so, not an error
+        print(exc, file=sys.stderr)
+        return 0
     except SegwatchError as exc:
         if args.debug:
             traceback.print_exc()
@@ -161,7 +187,96 @@ def cmd_check(args: argparse.Namespace, out: TextIO) -> int:
     return 0
 
 
-COMMANDS = {"run": cmd_run, "backfill": cmd_backfill, "history": cmd_history, "check": cmd_check}
+def cmd_serve(args: argparse.Namespace, out: TextIO) -> int:
+    import signal
+
+    from .scheduler import Service
+
+    service = Service([load_config(path) for path in args.configs], retry_minutes=args.retry_minutes)
+
+    def on_signal(signum: int, _frame: Any) -> None:
+        log.info("received %s", signal.Signals(signum).name)
+        service.stop_event.set()
+
+    previous = {sig: signal.signal(sig, on_signal) for sig in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        service.start()
+        for name, when in service.next_ticks().items():
+            job = service.jobs[name]
+            out.write(f"serving {name}: schedule {job.config.schedule!r} (UTC), next tick "
+                      f"{when.isoformat().replace('+00:00', 'Z') if when else 'never'}; catching up now\n")
+        out.flush()
+        while not service.stop_event.wait(1.0):
+            pass
+        out.write("stopping: finishing the period being computed\n")
+        out.flush()
+    finally:
+        service.shutdown()
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+    out.write("stopped\n")
+    return 0
+
+
+def cmd_alerts(args: argparse.Namespace, out: TextIO) -> int:
+    from .alerts import channel_display
+
+    cfg = load_config(args.config)
+    with Job(cfg) as job:
+        outcome = None
+        if args.retry:
+            job.history.requeue(job.clock.now())
+            outcome = job.deliver(force=True)
+        rows = job.history.alerts()
+        periods = sorted((e for e in job.ledger.entries().values() if e.state != "done"), key=lambda e: e.period)
+    undelivered = bool(outcome and (outcome.busy or rows))
+    if args.json:
+        doc: dict[str, Any] = {"job": cfg.job, "alerts": [r.to_json() for r in rows],
+                               "periods": [e.to_json() for e in periods]}
+        if outcome is not None:
+            doc["retry"] = {"sent": outcome.sent, "retrying": outcome.retrying, "dead": outcome.dead,
+                            "busy": outcome.busy}
+        json.dump(doc, out, indent=2)
+        out.write("\n")
+        return 1 if undelivered else 0
+    if outcome is not None:
+        if outcome.busy:
+            out.write(f"alerts of {cfg.job} are being delivered by {outcome.busy}; try again later\n")
+        else:
+            out.write(f"retry: {outcome.sent} sent, {outcome.retrying} still failing, {outcome.dead} dead\n")
+    if not rows:
+        out.write(f"No pending or dead alerts for job {cfg.job}.\n")
+    else:
+        counts = {s: sum(r.status == s for r in rows) for s in ("pending", "dead")}
+        out.write(f"{cfg.job}: {counts['pending']} pending, {counts['dead']} dead\n\n")
+        out.write(_table(
+            ["status", "channel", "period", "kind", "metric", "segment", "attempts", "next try", "last error"],
+            [[r.status, channel_display(r.channel), r.period or "-", r.kind, r.metric or "-", r.segment or "-",
+              str(r.attempts),
+              "-" if r.status == "dead" else (r.next_attempt_at.strftime("%Y-%m-%d %H:%M:%SZ")
+                                              if r.next_attempt_at else "now"),
+              r.last_error or "-"] for r in rows]))
+    if periods:
+        out.write("\nperiods not done:\n")
+        out.write(_table(["period", "state", "attempts", "last error"],
+                         [[e.period, e.state, str(e.attempts), e.last_error or "-"] for e in periods]))
+    return 1 if undelivered else 0
+
+
+def cmd_report(args: argparse.Namespace, out: TextIO) -> int:
+    from .report import write_report  # matplotlib is imported only when a report is written
+
+    if args.periods is not None and args.periods < 1:
+        raise UsageError(f"--periods: give a whole number of at least 1, not {args.periods}")
+    cfg = load_config(args.config)
+    with Job(cfg) as job:
+        path = write_report(job, args.period, Path(args.out), args.periods)
+    out.write(f"wrote {path}\n")
+    return 0
+
+
+COMMANDS = {"run": cmd_run, "backfill": cmd_backfill, "history": cmd_history, "check": cmd_check,
+            "serve": cmd_serve, "alerts": cmd_alerts, "report": cmd_report}
 
 
 # ------------------------------------------------------------------ rendering
@@ -253,34 +368,81 @@ def render_backfill(job: str, reports: Sequence[PeriodReport]) -> str:
     return "\n".join(lines) + "\n"
 
 
+def _marks(e: dict[str, Any]) -> str:
+    """Two marker characters for a stored entry: * significant, ! a watched check fails."""
+    failing = any(c.get("watched") and c.get("passed") is False for c in (e.get("assumptions") or {}).values())
+    return ("*" if e.get("significant") else " ") + ("!" if failing else " ")
+
+
+def _decimals(values: Sequence[Any]) -> int:
+    """Decimal places that show about three significant digits of the typical value."""
+    vals = sorted(abs(v) for v in values if isinstance(v, (int, float)) and math.isfinite(v) and v != 0)
+    if not vals:
+        return 2
+    return min(6, max(0, 2 - math.floor(math.log10(vals[len(vals) // 2]))))
+
+
+def _grid(header: Sequence[str], rows: Sequence[Sequence[str]], right: Sequence[int] = ()) -> str:
+    """A plain-text table; the columns in ``right`` are right-aligned (numbers)."""
+    widths = [max(len(str(c)) for c in col) for col in zip(header, *rows)]
+
+    def line(cells: Sequence[str]) -> str:
+        return "  ".join(str(c).rjust(w) if i in right else str(c).ljust(w)
+                         for i, (c, w) in enumerate(zip(cells, widths))).rstrip()
+
+    return "\n".join([line(header), "  ".join("-" * w for w in widths), *(line(r) for r in rows)]) + "\n"
+
+
 def render_overview(job: str, entries: Sequence[dict[str, Any]], level: float) -> str:
-    """Metrics x periods: q-value, with * where significant."""
+    """Metrics x periods: one row per stored period, one column per metric, the q-value
+    in each cell with * where the metric differs and ! where a watched check fails."""
     periods = list(dict.fromkeys(e["period"] for e in entries))
-    metrics = list(dict.fromkeys(e["metric"] for e in entries))
+    metrics = sorted(dict.fromkeys(e["metric"] for e in entries))
     cell = {(e["metric"], e["period"]): e for e in entries}
     rows = []
     for p in periods:
         row = [p]
         for m in metrics:
             e = cell.get((m, p))
-            row.append("" if e is None else _p(e.get("q_value")) + ("*" if e.get("significant") else " "))
+            row.append("." if e is None else _p(e.get("q_value")) + _marks(e))
+        n_sig = sum(1 for m in metrics if (cell.get((m, p)) or {}).get("significant"))
+        row.append(str(n_sig) if n_sig else "")
         rows.append(row)
-    return (f"{job}: q-values by period (* = significant at {level})\n\n"
-            + _table(["period", *metrics], rows))
+    legend = (f"q-value by period; * differs (q <= {level:g}), ! a watched assumption check fails, "
+              ". not stored")
+    foot = (f"\n{len(periods)} periods, {periods[0]} to {periods[-1]}. One metric segment by segment: "
+            "--metric NAME; everything: --json.\n") if periods else ""
+    return (f"{job}: {legend}\n\n"
+            + _grid(["period", *metrics, "differ"], rows, right=range(1, len(metrics) + 2)) + foot)
 
 
 def render_metric_history(metric: str, entries: Sequence[dict[str, Any]]) -> str:
-    """Segments x periods: mean, with ▲/▼ where flagged."""
-    periods = [e["period"] for e in entries]
+    """Segments x periods for one metric: one row per stored period, one column per
+    segment with its mean (▲/▼ where it stands above/below the rest), plus the test,
+    the q-value with * / ! as in the overview, and the watched checks that fail."""
+    if not entries:
+        return ""
     segs = sorted({s["segment"] for e in entries for s in e.get("segments", [])})
+    places = _decimals([s.get("mean") for e in entries for s in e.get("segments", [])])
     rows = []
     for e in entries:
         by = {s["segment"]: s for s in e.get("segments", [])}
-        row = [e["period"], e["method"], _p(e.get("q_value")) + ("*" if e.get("significant") else " ")]
+        row = [e["period"], e.get("method") or "-", _p(e.get("q_value")) + _marks(e)]
         for s in segs:
             x = by.get(s)
-            mark = {"high": "▲", "low": "▼"}.get(x.get("flag"), " ") if x else ""
-            row.append("" if x is None else f"{_g(x.get('mean'), 4)}{mark}")
+            if x is None:
+                row.append(".")
+                continue
+            mean = x.get("mean")
+            text = f"{mean:.{places}f}" if isinstance(mean, (int, float)) and math.isfinite(mean) else "-"
+            mark = {"high": "▲", "low": "▼"}.get(x.get("flag") or "", " ")
+            row.append(text + ("~" if x.get("excluded") else mark))
+        failing = [k for k, c in (e.get("assumptions") or {}).items() if c.get("watched") and c.get("passed") is False]
+        row.append(", ".join(failing))
         rows.append(row)
-    return (f"{metric}: segment means by period (▲/▼ = stands above/below the rest; * = significant)\n\n"
-            + _table(["period", "method", "q", *segs], rows)) if periods else ""
+    legend = ("mean per segment and period; ▲/▼ stands above/below the rest, ~ left out (too few values), "
+              ". no records; q: * differs, ! a watched check fails")
+    unit = next((e.get("unit") for e in entries if e.get("unit")), None)
+    return (f"{metric}{f' ({unit})' if unit else ''}: {legend}\n\n"
+            + _grid(["period", "test", "q", *segs, "failing checks"], rows, right=range(2, len(segs) + 3))
+            + f"\n{len(entries)} periods, {entries[0]['period']} to {entries[-1]['period']}.\n")

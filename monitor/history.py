@@ -8,11 +8,24 @@ SQLAlchemy URL works; the default is a SQLite file.
   assumptions, data quality, plus the full JSON entry as printed by ``run --json``.
 * ``sw_segment_results`` / ``sw_pair_results`` — per segment and per pair.
 * ``sw_events`` — events, keyed by a stable hash of (job, period, kind, metric, segment).
-* ``sw_outbox`` — one row per (event, alert channel): pending, sent or dead.
+* ``sw_outbox`` — one row per (event, alert channel): pending, sent or dead, with the
+  number of attempts, the last error and when the next attempt is due (backoff).
+* ``sw_ledger`` — one row per (job, period): pending → running → done / failed, with
+  attempts, last error and timestamps (see :mod:`monitor.ledger`).
+* ``sw_leases`` — who may compute a period (or deliver a job's alerts) right now:
+  owner ``host:pid:uuid`` and an expiry; claimed with a conditional insert/update.
 
 Storing a period is one transaction. Results of the period are replaced whole;
 events are reconciled by key, so running a period again neither duplicates an event
-nor sends an alert that was already sent (the outbox keeps its state).
+nor sends an alert that was already sent (the outbox keeps its state). When the run
+holds a lease, the same transaction checks the lease is still ours, releases it and
+marks the period ``done`` in the ledger: results, events, outbox rows and the ledger
+change together or not at all.
+
+Operational events (kinds starting with ``op_``: a run that failed, a period skipped
+for want of rows, a lease taken over, an alert dead-lettered, a scheduled run skipped)
+are stored in ``sw_events`` too, each occurrence under its own key, with outbox rows
+for the job's ``log`` channels only. Re-running a period never reconciles them away.
 
 On SQLite the file runs in WAL mode and write transactions start with
 ``BEGIN IMMEDIATE``, so two writers queue instead of failing on a lock upgrade.
@@ -38,6 +51,13 @@ from .events import Event
 from .periods import Period
 
 log = logging.getLogger(__name__)
+
+#: Prefix of operational event kinds (never one of the contract's event kinds).
+OP_PREFIX = "op_"
+
+
+class LeaseLost(HistoryError):
+    """The run's lease was taken over by another process before it could store its results."""
 
 metadata = sa.MetaData()
 
@@ -117,8 +137,36 @@ outbox = sa.Table(
     sa.Column("attempts", sa.Integer, nullable=False, default=0),
     sa.Column("last_error", sa.Text),
     sa.Column("updated_at", sa.DateTime(), nullable=False),
+    sa.Column("next_attempt_at", sa.DateTime()),  # NULL: due now
     sa.Index("ix_sw_outbox_status", "job", "channel", "status"),
 )
+
+ledger_t = sa.Table(
+    "sw_ledger", metadata,
+    sa.Column("job", sa.String(200), primary_key=True),
+    sa.Column("period", sa.String(16), primary_key=True),
+    sa.Column("state", sa.String(8), nullable=False),  # pending | running | done | failed
+    sa.Column("attempts", sa.Integer, nullable=False),
+    sa.Column("last_error", sa.Text),
+    sa.Column("note", sa.Text),
+    sa.Column("owner", sa.String(200)),  # the lease owner of the latest attempt
+    sa.Column("created_at", sa.DateTime(), nullable=False),
+    sa.Column("started_at", sa.DateTime()),
+    sa.Column("finished_at", sa.DateTime()),
+    sa.Column("next_attempt_at", sa.DateTime()),
+)
+
+leases_t = sa.Table(
+    "sw_leases", metadata,
+    sa.Column("job", sa.String(200), primary_key=True),
+    sa.Column("resource", sa.String(40), primary_key=True),  # a period identifier, or ~relay
+    sa.Column("owner", sa.String(200), nullable=False),
+    sa.Column("acquired_at", sa.DateTime(), nullable=False),
+    sa.Column("expires_at", sa.DateTime(), nullable=False),
+)
+
+#: Columns added after the first release: created on an existing table by :meth:`History.ensure`.
+_ADDED_COLUMNS = {"sw_outbox": ("next_attempt_at",)}
 
 
 @dataclass(frozen=True)
@@ -138,8 +186,128 @@ class OutboxItem:
     event: dict[str, Any]
 
 
+@dataclass(frozen=True)
+class AlertRow:
+    """One undelivered (pending) or dead-lettered alert, for ``segwatch alerts``."""
+
+    channel: str
+    status: str
+    period: str | None
+    kind: str
+    metric: str | None
+    segment: str | None
+    message: str
+    attempts: int
+    last_error: str | None
+    next_attempt_at: datetime | None  # aware UTC; None means due now
+    updated_at: datetime
+    event_key: str
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "channel": self.channel, "status": self.status, "period": self.period, "kind": self.kind,
+            "metric": self.metric, "segment": self.segment, "message": self.message,
+            "attempts": self.attempts, "last_error": self.last_error,
+            "next_attempt_at": iso_utc(self.next_attempt_at), "updated_at": iso_utc(self.updated_at),
+            "event_key": self.event_key,
+        }
+
+
 def _utc_naive(dt: datetime) -> datetime:
     return dt.astimezone(timezone.utc).replace(tzinfo=None)
+
+
+def utc_aware(dt: datetime | str | None) -> datetime | None:
+    """A naive-UTC value read back from the database, as an aware UTC datetime."""
+    if dt is None:
+        return None
+    if isinstance(dt, str):
+        dt = datetime.fromisoformat(dt)
+    return dt.replace(tzinfo=timezone.utc) if dt.tzinfo is None else dt.astimezone(timezone.utc)
+
+
+def iso_utc(dt: datetime | None) -> str | None:
+    """ISO 8601 in UTC with a ``Z``, or None."""
+    if dt is None:
+        return None
+    return utc_aware(dt).isoformat().replace("+00:00", "Z")
+
+
+def insert_missing(conn: sa.Connection, table: sa.Table, row: Mapping[str, Any]) -> bool:
+    """Insert ``row`` unless a row with the same primary key exists; True when inserted.
+
+    One helper per dialect (SQLAlchemy has no portable upsert, issue #8321):
+    ``INSERT .. ON CONFLICT DO NOTHING`` on SQLite and PostgreSQL, ``INSERT IGNORE`` on
+    MySQL/MariaDB, and check-then-insert elsewhere (safe inside the caller's
+    serialising transaction).
+    """
+    name = conn.dialect.name
+    if name == "sqlite":
+        from sqlalchemy.dialects.sqlite import insert as dialect_insert
+        stmt = dialect_insert(table).values(**row).on_conflict_do_nothing()
+    elif name == "postgresql":  # rowcount of an INSERT is not reported there (-1): ask for the row back
+        from sqlalchemy.dialects.postgresql import insert as dialect_insert
+        pk = list(table.primary_key.columns)[0]
+        stmt = dialect_insert(table).values(**row).on_conflict_do_nothing().returning(pk)
+        return conn.execute(stmt).first() is not None
+    elif name in ("mysql", "mariadb"):
+        stmt = sa.insert(table).values(**row).prefix_with("IGNORE")
+    else:
+        where = [c == row[c.name] for c in table.primary_key.columns]
+        if conn.execute(sa.select(sa.literal(1)).select_from(table).where(*where)).first() is not None:
+            return False
+        stmt = sa.insert(table).values(**row)
+    return conn.execute(stmt).rowcount == 1
+
+
+def is_op(kind: str) -> bool:
+    """Whether an event kind is operational (``op_...``) rather than one of the contract's."""
+    return kind.startswith(OP_PREFIX)
+
+
+def insert_op(conn: sa.Connection, job: str, period: str | None, event: Event,
+              channels: Sequence[str], now: datetime) -> bool:
+    """Store one operational event and its outbox rows (``channels``) unless already stored.
+
+    ``period`` is None for an event that belongs to the job rather than to a period
+    (stored as an empty string). Returns True when the event is new.
+    """
+    ident = period or ""
+    key = event.key(job, ident)
+    naive = _utc_naive(now)
+    fresh = insert_missing(conn, events_t, {
+        "event_key": key, "job": job, "period": ident, "kind": event.kind, "metric": event.metric,
+        "segment": event.segment, "message": event.message,
+        "detail": json.dumps(dict(event.detail), default=str), "detected_at": naive,
+    })
+    if fresh:
+        for ch in channels:
+            insert_missing(conn, outbox, {"event_key": key, "channel": ch, "job": job, "status": "pending",
+                                          "attempts": 0, "updated_at": naive, "next_attempt_at": None})
+    return fresh
+
+
+def finish_period(conn: sa.Connection, job: str, period: str, owner: str | None, now: datetime,
+                  note: str | None = None) -> None:
+    """Mark ``period`` done in the ledger and release the run's lease, inside the caller's transaction.
+
+    With an ``owner``, the lease row must still be ours; otherwise :class:`LeaseLost`
+    is raised and the caller's transaction rolls back (nothing of the run is kept).
+    """
+    naive = _utc_naive(now)
+    if owner is not None:
+        gone = conn.execute(sa.delete(leases_t).where(
+            leases_t.c.job == job, leases_t.c.resource == period, leases_t.c.owner == owner))
+        if gone.rowcount != 1:
+            holder = conn.execute(sa.select(leases_t.c.owner).where(
+                leases_t.c.job == job, leases_t.c.resource == period)).scalar_one_or_none()
+            raise LeaseLost(
+                f"period {period} of job {job}: the lease was taken over by {holder or 'another process'} "
+                f"while this run ({owner}) computed it; its results were not stored")
+    insert_missing(conn, ledger_t, {"job": job, "period": period, "state": "pending", "attempts": 1,
+                                    "created_at": naive})
+    conn.execute(sa.update(ledger_t).where(ledger_t.c.job == job, ledger_t.c.period == period).values(
+        state="done", finished_at=naive, last_error=None, next_attempt_at=None, note=note))
 
 
 class History:
@@ -159,13 +327,32 @@ class History:
             return
         try:
             metadata.create_all(self.engine)
+            self._add_missing_columns()
         except SQLAlchemyError as exc:
             raise HistoryError(f"cannot create the history tables at {redact(self.url)}: {one_line(exc)}") from exc
         self._ready = True
 
+    def _add_missing_columns(self) -> None:
+        """Add columns introduced after a history database was created (nullable, so no data moves)."""
+        inspector = sa.inspect(self.engine)
+        for table_name, names in _ADDED_COLUMNS.items():
+            have = {c["name"] for c in inspector.get_columns(table_name)}
+            for name in names:
+                if name in have:
+                    continue
+                col = metadata.tables[table_name].c[name]
+                ddl = f"ALTER TABLE {table_name} ADD COLUMN {name} {col.type.compile(dialect=self.engine.dialect)}"
+                with self.engine.begin() as conn:
+                    conn.exec_driver_sql(ddl)
+                log.info("history %s: added column %s.%s", redact(self.url), table_name, name)
+
     def _begin(self):
         self.ensure()
         return self.engine.begin()
+
+    def begin(self):
+        """A write transaction (``BEGIN IMMEDIATE`` on SQLite); tables are created first if needed."""
+        return self._begin()
 
     # -------------------------------------------------------------- writes
 
@@ -181,16 +368,20 @@ class History:
         rows: int,
         null_segment_rows: int,
         segments: Sequence[str],
+        lease_owner: str | None = None,
     ) -> list[Event]:
-        """Replace the period's results and reconcile its events, in one transaction.
+        """Replace the period's results, reconcile its events and mark it done, in one transaction.
 
         Returns the events that are new to this period (those not stored by an
-        earlier run of the same period); only these get outbox rows.
+        earlier run of the same period); only these get outbox rows. With
+        ``lease_owner`` the transaction first checks that the run still holds the
+        period's lease and releases it (:class:`LeaseLost` if not: nothing is stored).
         """
         key = {"job": self.job, "period": period.ident}
         now = _utc_naive(computed_at)
         try:
             with self._begin() as conn:
+                finish_period(conn, self.job, period.ident, lease_owner, computed_at)
                 for table in (pair_results, segment_results, metric_results, runs):
                     conn.execute(sa.delete(table).where(table.c.job == self.job, table.c.period == period.ident))
                 conn.execute(sa.insert(runs).values(
@@ -215,6 +406,8 @@ class History:
                 if pair_rows:
                     conn.execute(sa.insert(pair_results), pair_rows)
                 return self._reconcile_events(conn, period, events, channels, now)
+        except LeaseLost:
+            raise
         except SQLAlchemyError as exc:
             raise HistoryError(
                 f"cannot store period {period.ident} in the history at {redact(self.url)}: {one_line(exc)}"
@@ -225,7 +418,9 @@ class History:
         existing = {
             row.event_key
             for row in conn.execute(
-                sa.select(events_t.c.event_key).where(events_t.c.job == self.job, events_t.c.period == period.ident)
+                sa.select(events_t.c.event_key).where(
+                    events_t.c.job == self.job, events_t.c.period == period.ident,
+                    sa.not_(events_t.c.kind.startswith(OP_PREFIX, autoescape=True)))
             )
         }
         wanted = {e.key(self.job, period.ident): e for e in events}
@@ -246,10 +441,18 @@ class History:
                  "detail": json.dumps(e.detail, default=str), "detected_at": now}
                 for e in fresh
             ])
+            fresh_keys = [e.key(self.job, period.ident) for e in fresh]
+            # An event withdrawn by an earlier re-run and now back keeps the outbox rows
+            # already sent for it: it is not announced twice.
+            sent_before = {
+                (r.event_key, r.channel)
+                for r in conn.execute(sa.select(outbox.c.event_key, outbox.c.channel).where(
+                    outbox.c.event_key.in_(fresh_keys)))
+            }
             rows = [
-                {"event_key": e.key(self.job, period.ident), "channel": ch, "job": self.job,
-                 "status": "pending", "attempts": 0, "updated_at": now}
-                for e in fresh for ch in channels
+                {"event_key": k, "channel": ch, "job": self.job,
+                 "status": "pending", "attempts": 0, "updated_at": now, "next_attempt_at": None}
+                for k in fresh_keys for ch in channels if (k, ch) not in sent_before
             ]
             if rows:
                 conn.execute(sa.insert(outbox), rows)
@@ -257,31 +460,85 @@ class History:
 
     # -------------------------------------------------------------- outbox
 
-    def pending(self, channel: str) -> list[OutboxItem]:
-        """Undelivered alerts for one channel, oldest period first."""
+    def pending(self, channel: str, now: datetime | None = None) -> list[OutboxItem]:
+        """Undelivered alerts for one channel, oldest period first.
+
+        With ``now``, only those due (no backoff, or backoff over by ``now``).
+        """
         self.ensure()
         stmt = (
             sa.select(outbox.c.event_key, outbox.c.attempts, events_t)
             .join(events_t, events_t.c.event_key == outbox.c.event_key)
             .where(outbox.c.job == self.job, outbox.c.channel == channel, outbox.c.status == "pending")
-            .order_by(events_t.c.period, events_t.c.detected_at, events_t.c.kind, events_t.c.metric,
-                      events_t.c.segment)
+            .order_by(events_t.c.period, events_t.c.detected_at, events_t.c.kind, *_nulls_first_text())
         )
+        if now is not None:
+            stmt = stmt.where(sa.or_(outbox.c.next_attempt_at.is_(None),
+                                     outbox.c.next_attempt_at <= _utc_naive(now)))
         with self.engine.connect() as conn:
             rows = conn.execute(stmt).mappings().all()
         return [OutboxItem(r["event_key"], channel, r["attempts"], _event_dict(r)) for r in rows]
 
-    def mark(self, channel: str, keys: Iterable[str], status: str, now: datetime, error: str | None = None) -> None:
+    def mark(self, channel: str, keys: Iterable[str], status: str, now: datetime, error: str | None = None,
+             next_attempt_at: datetime | None = None) -> None:
+        """Record one delivery attempt of ``keys`` on ``channel``: sent, pending (retry later) or dead."""
         keys = list(keys)
         if not keys:
             return
+        try:
+            with self._begin() as conn:
+                conn.execute(
+                    sa.update(outbox)
+                    .where(outbox.c.channel == channel, outbox.c.event_key.in_(keys))
+                    .values(status=status, attempts=outbox.c.attempts + 1, last_error=error,
+                            updated_at=_utc_naive(now),
+                            next_attempt_at=_utc_naive(next_attempt_at) if next_attempt_at else None)
+                )
+        except SQLAlchemyError as exc:
+            raise HistoryError(f"cannot record alert delivery in the history at {redact(self.url)}: "
+                               f"{one_line(exc)}") from exc
+
+    def alerts(self, statuses: Sequence[str] = ("pending", "dead")) -> list[AlertRow]:
+        """Alerts in the given states, by channel and period (for ``segwatch alerts``)."""
+        self.ensure()
+        stmt = (
+            sa.select(outbox.c.channel, outbox.c.status, outbox.c.attempts, outbox.c.last_error,
+                      outbox.c.next_attempt_at, outbox.c.updated_at, outbox.c.event_key,
+                      events_t.c.period, events_t.c.kind, events_t.c.metric, events_t.c.segment,
+                      events_t.c.message)
+            .join(events_t, events_t.c.event_key == outbox.c.event_key)
+            .where(outbox.c.job == self.job, outbox.c.status.in_(list(statuses)))
+            .order_by(outbox.c.status, outbox.c.channel, events_t.c.period, events_t.c.kind, *_nulls_first_text())
+        )
+        with self.engine.connect() as conn:
+            return [AlertRow(r.channel, r.status, r.period or None, r.kind, r.metric, r.segment, r.message,
+                             r.attempts, r.last_error, utc_aware(r.next_attempt_at), utc_aware(r.updated_at),
+                             r.event_key)
+                    for r in conn.execute(stmt)]
+
+    def requeue(self, now: datetime) -> int:
+        """Make every dead or backed-off alert of the job due now (``segwatch alerts --retry``).
+
+        Dead alerts go back to ``pending`` with their attempt count reset (the give-up
+        limit counts from here); their last error is kept until the next attempt.
+        Returns the number of alerts made due.
+        """
         with self._begin() as conn:
-            conn.execute(
-                sa.update(outbox)
-                .where(outbox.c.channel == channel, outbox.c.event_key.in_(keys))
-                .values(status=status, attempts=outbox.c.attempts + 1, last_error=error,
-                        updated_at=_utc_naive(now))
-            )
+            n = conn.execute(sa.update(outbox).where(outbox.c.job == self.job, outbox.c.status == "dead").values(
+                status="pending", attempts=0, next_attempt_at=None, updated_at=_utc_naive(now))).rowcount
+            n += conn.execute(sa.update(outbox).where(
+                outbox.c.job == self.job, outbox.c.status == "pending", outbox.c.next_attempt_at.is_not(None)
+            ).values(next_attempt_at=None)).rowcount
+        return n
+
+    def record_op(self, period: str | None, event: Event, channels: Sequence[str], now: datetime) -> bool:
+        """Store an operational event (kind ``op_...``) with outbox rows for ``channels``; True if new."""
+        try:
+            with self._begin() as conn:
+                return insert_op(conn, self.job, period, event, channels, now)
+        except SQLAlchemyError as exc:
+            raise HistoryError(f"cannot record an operational event in the history at {redact(self.url)}: "
+                               f"{one_line(exc)}") from exc
 
     # -------------------------------------------------------------- reads
 
@@ -330,12 +587,15 @@ class History:
         with self.engine.connect() as conn:
             return [{"period": r.period, **json.loads(r.payload)} for r in conn.execute(stmt)]
 
-    def events(self, period: str | None = None) -> list[dict[str, Any]]:
+    def events(self, period: str | None = None, include_ops: bool = True) -> list[dict[str, Any]]:
+        """Stored events of the job (or of one period), operational ones (``op_...``) included unless asked."""
         self.ensure()
         stmt = sa.select(events_t).where(events_t.c.job == self.job)
         if period is not None:
             stmt = stmt.where(events_t.c.period == period)
-        stmt = stmt.order_by(events_t.c.period, events_t.c.kind, events_t.c.metric, events_t.c.segment)
+        if not include_ops:
+            stmt = stmt.where(sa.not_(events_t.c.kind.startswith(OP_PREFIX, autoescape=True)))
+        stmt = stmt.order_by(events_t.c.period, events_t.c.kind, *_nulls_first_text())
         with self.engine.connect() as conn:
             return [_event_dict(r) for r in conn.execute(stmt).mappings()]
 
@@ -358,6 +618,11 @@ class History:
         self.engine.dispose()
 
 
+def _nulls_first_text() -> tuple:
+    """Order by metric and segment with NULL first on every dialect (PostgreSQL sorts NULL last)."""
+    return sa.func.coalesce(events_t.c.metric, ""), sa.func.coalesce(events_t.c.segment, "")
+
+
 def _metric_row(key: Mapping[str, str], r: MetricResult) -> dict[str, Any]:
     payload = r.to_json()
     eff = r.effect_size
@@ -374,7 +639,7 @@ def _event_dict(r: Mapping[str, Any]) -> dict[str, Any]:
     if isinstance(detected, str):
         detected = datetime.fromisoformat(detected)
     return {
-        "event_key": r["event_key"], "job": r["job"], "period": r["period"], "kind": r["kind"],
+        "event_key": r["event_key"], "job": r["job"], "period": r["period"] or None, "kind": r["kind"],
         "metric": r["metric"], "segment": r["segment"], "message": r["message"],
         "detail": json.loads(r["detail"]) if r["detail"] else {},
         "detected_at": detected.replace(tzinfo=timezone.utc).isoformat().replace("+00:00", "Z"),

@@ -9,20 +9,33 @@
     report = job.run("2026-W14")          # or job.run() for the latest complete period
     for event in report.events:
         print(event.kind, event.message)
+
+Every run goes through the period ledger (:mod:`monitor.ledger`): it first claims the
+period's lease (another process holding it raises :class:`~monitor.ledger.PeriodBusy`,
+exit code 0: nothing started), marks the period ``running``, renews the lease while
+it computes, and stores results, events, outbox rows and the ``done`` mark in one
+transaction that also checks the lease is still ours. A failure on the way (source
+unreachable, history not writable, anything unexpected) marks the period ``failed``
+with the reason, releases the lease and records ``op_run_failed``; nothing of the
+run is half-written. A period whose source has no rows is not stored: it is ``done``
+with a note and ``op_period_empty``, and earlier results of it (if any) are kept.
 """
 
 from __future__ import annotations
 
 import logging
 from dataclasses import dataclass
+from datetime import timedelta
 from typing import Any, Callable, Iterable
 
-from .alerts import RelayOutcome, build_sinks, relay
+from .alerts import RELAY_WAIT_SECONDS, RelayOutcome, build_sinks, op_channels, relay
 from .analysis import MetricResult, analyse_period
 from .clock import Clock, SystemClock
 from .config import JobConfig, config_hash
+from .errors import SegwatchError
 from .events import Baseline, Event, derive_events
-from .history import History
+from .history import History, LeaseLost, iso_utc
+from .ledger import LEASE_SECONDS, Claim, Ledger, LedgerEntry, PeriodBusy
 from .periods import Period, latest_complete, parse_period, period_range
 from .source import Source
 
@@ -42,9 +55,10 @@ class PeriodReport:
     null_segment_rows: int
     segments: tuple[str, ...]
     delivery: RelayOutcome
+    note: str | None = None  # why the period was not stored (the source had no rows)
 
     def to_json(self) -> dict[str, Any]:
-        return {
+        doc = {
             "job": self.job,
             "period": self.period.ident,
             "start": self.period.start.isoformat(),
@@ -57,17 +71,29 @@ class PeriodReport:
             "alerts": {"sent": self.delivery.sent, "retrying": self.delivery.retrying,
                        "dead": self.delivery.dead},
         }
+        if self.note:
+            doc["note"] = self.note
+        return doc
 
 
 class Job:
-    """A configured job: its source, history and alert sinks."""
+    """A configured job: its source, history, ledger and alert sinks.
+
+    ``lease_seconds`` is how long a claim on a period lasts without renewal (a
+    running period renews it every third of that); ``relay_wait`` how long a run
+    waits for another process's alert delivery before leaving its alerts pending.
+    """
 
     def __init__(self, config: JobConfig, clock: Clock | None = None,
-                 source: Source | None = None, history: History | None = None):
+                 source: Source | None = None, history: History | None = None, *,
+                 lease_seconds: float = LEASE_SECONDS, relay_wait: float = RELAY_WAIT_SECONDS):
         self.config = config
         self.clock = clock or SystemClock()
         self._source = source
         self._history = history
+        self._ledger: Ledger | None = None
+        self.lease_seconds = lease_seconds
+        self.relay_wait = relay_wait
         self.sinks = build_sinks(config)
 
     @property
@@ -82,6 +108,16 @@ class Job:
             self._history = History(self.config.history.url, self.config.job)
         return self._history
 
+    @property
+    def ledger(self) -> Ledger:
+        if self._ledger is None:
+            self._ledger = Ledger(self.history, self.clock, self.lease_seconds, op_channels(self.sinks))
+        return self._ledger
+
+    @property
+    def settle(self) -> timedelta:
+        return timedelta(minutes=self.config.scheduling.settle_minutes)
+
     def period(self, ident: str | None = None) -> Period:
         """The period named by ``ident``, or the latest complete one by the clock."""
         cfg = self.config
@@ -92,13 +128,51 @@ class Job:
     def periods(self, first: str, last: str) -> list[Period]:
         return period_range(self.config.period, first, last, self.config.timezone)
 
-    def run(self, period: Period | str | None = None) -> PeriodReport:
-        """Compute one period, store it (replacing an earlier run of it) and deliver its alerts."""
+    def settled(self, entry: LedgerEntry | None, period: Period) -> bool:
+        """Whether ``entry`` says ``period`` is done from a run made after it closed and settled."""
+        return (entry is not None and entry.state == "done" and entry.finished_at is not None
+                and entry.finished_at >= period.end_utc + self.settle)
+
+    def run(self, period: Period | str | None = None, *, only_if_owed: bool = False) -> PeriodReport | None:
+        """Compute one period, store it (replacing an earlier run of it) and deliver its alerts.
+
+        Raises :class:`~monitor.ledger.PeriodBusy` when another process holds the
+        period. With ``only_if_owed`` (the scheduler's catch-up), a period that became
+        done (and settled) meanwhile is left alone and None is returned.
+        """
         if not isinstance(period, Period):
             period = self.period(period)
         cfg = self.config
-        log.info("job %s: computing %s [%s, %s)", cfg.job, period.ident, period.start, period.end)
+        claim = self.ledger.claim(period.ident)
+        if not claim.won:
+            raise PeriodBusy(f"period {period.ident} of job {cfg.job} is being computed by {claim.owner} "
+                             f"until {iso_utc(claim.expires_at)}; not started")
+        if only_if_owed and self.settled(claim.entry, period):
+            self.ledger.release(claim)
+            log.info("job %s: %s was completed by another run meanwhile", cfg.job, period.ident)
+            return None
+        try:
+            entry = self.ledger.start(claim)
+            log.info("job %s: computing %s [%s, %s) (attempt %d)", cfg.job, period.ident, period.start,
+                     period.end, entry.attempts)
+            with self.ledger.heartbeat(claim):
+                report = self._compute(period, claim)
+        except LeaseLost:
+            raise
+        except BaseException as exc:
+            self._failed(claim, exc)
+            raise
+        return report
+
+    def _compute(self, period: Period, claim: Claim) -> PeriodReport:
+        cfg = self.config
         data = self.source.fetch(period)
+        if data.rows == 0:
+            self.ledger.finish_empty(claim, period.start, period.end)
+            outcome = self.deliver()
+            note = "the source had no rows in this period; nothing was stored"
+            log.info("job %s: %s skipped: %s", cfg.job, period.ident, note)
+            return PeriodReport(cfg.job, period, (), (), 0, 0, 0, (), outcome, note)
         results = analyse_period(data.metrics, cfg)
         stored = self.history.previous(period)
         baseline = (
@@ -110,12 +184,40 @@ class Job:
             period, results, events, [s.channel for s in self.sinks],
             computed_at=self.clock.now(), fingerprint=config_hash(cfg),
             rows=data.rows, null_segment_rows=data.null_segment_rows, segments=data.segments,
+            lease_owner=claim.owner,
         )
-        outcome = relay(self.history, self.sinks, self.clock)
+        outcome = self.deliver()
         log.info("job %s: %s stored, %d events (%d new), alerts sent %d", cfg.job, period.ident,
                  len(events), len(fresh), outcome.sent)
         return PeriodReport(cfg.job, period, results, tuple(events), len(fresh), data.rows,
                             data.null_segment_rows, data.segments, outcome)
+
+    def _failed(self, claim: Claim, exc: BaseException) -> None:
+        """Record a failed attempt (ledger, lease, op event) and try to log it; never raises."""
+        if isinstance(exc, SegwatchError):
+            reason = str(exc)
+        elif isinstance(exc, KeyboardInterrupt):
+            reason = "interrupted"
+        else:
+            reason = f"unexpected {type(exc).__name__}: {exc}"
+        try:
+            self.ledger.fail(claim, reason)
+        except Exception as err:  # noqa: BLE001 - the original error is what the caller sees
+            log.error("job %s: could not record the failure of %s in the history: %s",
+                      self.config.job, claim.resource, err)
+            return
+        log.info("job %s: %s failed and is recorded as failed: %s", self.config.job, claim.resource, reason)
+        if isinstance(exc, Exception):
+            try:
+                relay(self.history, [s for s in self.sinks if s.channel in self.ledger.op_channels], self.clock,
+                      lease_seconds=self.lease_seconds)
+            except Exception as err:  # noqa: BLE001
+                log.warning("job %s: could not write the failure to the alert log: %s", self.config.job, err)
+
+    def deliver(self, *, force: bool = False, wait: float | None = None) -> RelayOutcome:
+        """Deliver the job's due alerts now (all pending and, after :meth:`History.requeue`, dead ones)."""
+        return relay(self.history, self.sinks, self.clock, force=force,
+                     wait=self.relay_wait if wait is None else wait, lease_seconds=self.lease_seconds)
 
     def backfill(self, first: str, last: str,
                  progress: Callable[[int, int, Period], None] | None = None) -> list[PeriodReport]:
