@@ -1,0 +1,368 @@
+"""The report's pictures, drawn with matplotlib and returned as inline SVG text.
+
+Three pictures per metric (see :mod:`monitor.report` for what they mean):
+
+* :func:`box_svg` — the segments of one period side by side, one box each;
+* :func:`trend_svg` — each segment's mean with its 95% interval over the recent
+  periods, one small panel per segment with the other segments drawn faintly behind;
+* :func:`qvalue_svg` — the metric's q-value over the periods on a log scale, with
+  the false-discovery level and the periods' events marked.
+
+Design rules, written down once
+-------------------------------
+* The object-oriented API only (:class:`matplotlib.figure.Figure`, no ``pyplot``), so
+  no backend is selected and no figure is kept; rcParams are set in a context, under a
+  lock because they are process-wide.
+* Text is drawn as outlines (``svg.fonttype: path``) with the DejaVu font that ships
+  inside matplotlib: the picture looks the same everywhere and no font is fetched.
+* Colours come from the Okabe & Ito (2008) palette, which stays distinguishable under
+  the common colour-vision deficiencies; no meaning is carried by colour alone (a
+  flagged segment also gets a marker shape and words, events get distinct shapes).
+* Each SVG gets ``role="img"``, an ``aria-label`` and a ``<title>``; its element ids are
+  prefixed with a per-picture key so several pictures can share one HTML page; the
+  width and height are dropped so the page's CSS sizes it.
+
+References
+----------
+Okabe, M. and Ito, K. (2008). Color Universal Design (CUD): how to make figures and
+presentations that are friendly to colorblind people. J*FLY data depository.
+"""
+
+from __future__ import annotations
+
+import html
+import io
+import logging
+import math
+import re
+import threading
+from dataclasses import dataclass
+from typing import Sequence
+
+import matplotlib
+from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+from matplotlib.patches import Rectangle
+from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+
+log = logging.getLogger(__name__)
+
+# Okabe & Ito (2008)
+INK = "#1f2a36"
+GREY = "#9aa3ad"
+FAINT = "#d5dae0"
+BOX = "#c9d6e3"
+HIGH = "#D55E00"  # vermillion
+LOW = "#0072B2"  # blue
+GREEN = "#009E73"  # bluish green
+ORANGE = "#E69F00"
+PURPLE = "#CC79A7"
+
+# rcParams are process-wide: one picture at a time (``serve`` may write reports from several threads)
+_LOCK = threading.RLock()
+
+FLAG_COLOUR = {"high": HIGH, "low": LOW}
+FLAG_MARK = {"high": "▲", "low": "▼"}
+
+RC = {
+    "svg.fonttype": "path",
+    "svg.hashsalt": "segwatch",  # stable ids: the same data draws the same SVG
+    "font.family": "DejaVu Sans",
+    "font.size": 9,
+    "axes.edgecolor": GREY,
+    "axes.labelcolor": INK,
+    "axes.titlesize": 9,
+    "axes.titleweight": "bold",
+    "axes.titlecolor": INK,
+    "axes.spines.top": False,
+    "axes.spines.right": False,
+    "xtick.color": "#56606b",
+    "ytick.color": "#56606b",
+    "xtick.labelcolor": INK,
+    "ytick.labelcolor": INK,
+    "grid.color": "#e6e9ed",
+    "grid.linewidth": 0.8,
+    "legend.frameon": False,
+    "figure.facecolor": "none",
+    "axes.facecolor": "none",
+}
+
+
+@dataclass(frozen=True)
+class Box:
+    """One segment's box: quantiles (q05, q25, q50, q75, q95) when stored; without them
+    a bar from ``low`` to ``high`` (mean ± sd, or an interval) around the ``mean``."""
+
+    segment: str
+    n: int
+    mean: float
+    low: float = math.nan
+    high: float = math.nan
+    quantiles: tuple[float, ...] = ()
+    flag: str | None = None
+    excluded: bool = False
+
+
+@dataclass(frozen=True)
+class Point:
+    """A segment's mean in one period with its 95% interval (NaN when it cannot be formed)."""
+
+    index: int  # position of the period in the window
+    mean: float
+    low: float
+    high: float
+    flag: str | None = None
+
+
+def _figure(width: float, height: float, *, left: float = 0.75, right: float = 0.12, top: float = 0.12,
+            bottom: float = 0.45, hspace: float = 0.2, wspace: float = 0.2) -> Figure:
+    """A figure with fixed margins in inches (no layout engine: it would draw every picture twice)."""
+    fig = Figure(figsize=(width, height), dpi=100)
+    fig.subplots_adjust(left=left / width, right=1 - right / width, top=1 - top / height, bottom=bottom / height,
+                        hspace=hspace, wspace=wspace)
+    return fig
+
+
+def _finite(*xs: float) -> bool:
+    return all(x is not None and math.isfinite(x) for x in xs)
+
+
+def box_svg(boxes: Sequence[Box], *, key: str, label: str, ylabel: str, log_scale: bool = False) -> str:
+    """Segments side by side: box from q25 to q75, median line, whiskers at q05 and q95,
+    mean as a diamond. A segment without quantiles is drawn as a bar from ``low`` to
+    ``high`` with a dot at the mean. Flagged segments are coloured and carry ▲/▼ under
+    their name. ``log_scale`` draws the value axis logarithmically."""
+    with _LOCK, matplotlib.rc_context(RC):
+        fig = _figure(8.4, 3.1, bottom=0.5, top=0.1)
+        ax = fig.add_subplot()
+        if log_scale:
+            _log_axis(ax)
+        ax.grid(axis="y")
+        ax.set_axisbelow(True)
+        names = []
+        for i, b in enumerate(boxes):
+            colour = FLAG_COLOUR.get(b.flag or "", INK)
+            face = {"high": "#f6d5c0", "low": "#c6dcec"}.get(b.flag or "", BOX)
+            if b.excluded:
+                colour, face = GREY, "none"
+            if len(b.quantiles) == 5 and all(_finite(q) for q in b.quantiles):
+                q05, q25, q50, q75, q95 = b.quantiles
+                ax.vlines(i, q05, q25, color=colour, linewidth=1.2)
+                ax.vlines(i, q75, q95, color=colour, linewidth=1.2)
+                ax.hlines([q05, q95], i - 0.12, i + 0.12, color=colour, linewidth=1.2)
+                ax.add_patch(Rectangle(
+                    (i - 0.3, q25), 0.6, q75 - q25, facecolor=face, edgecolor=colour, linewidth=1.2,
+                    hatch="///" if b.excluded else None))
+                ax.hlines(q50, i - 0.3, i + 0.3, color=colour, linewidth=2.4)
+                if _finite(b.mean):
+                    ax.plot(i, b.mean, marker="D", markersize=4.5, markerfacecolor="white",
+                            markeredgecolor=colour, markeredgewidth=1.2, linestyle="none")
+            elif _finite(b.mean):
+                if _finite(b.low, b.high):
+                    ax.vlines(i, b.low, b.high, color=colour, linewidth=2.0)
+                    ax.hlines([b.low, b.high], i - 0.12, i + 0.12, color=colour, linewidth=1.2)
+                ax.plot(i, b.mean, marker="o", markersize=5.5, color=colour, linestyle="none")
+            mark = FLAG_MARK.get(b.flag or "", "")
+            tail = "left out" if b.excluded else f"n={b.n}"
+            names.append(f"{b.segment}\n{mark + ' ' if mark else ''}{tail}")
+        ax.set_xticks(range(len(boxes)), names)
+        for tick, b in zip(ax.get_xticklabels(), boxes):
+            tick.set_color(FLAG_COLOUR.get(b.flag or "", GREY if b.excluded else INK))
+        ax.tick_params(axis="x", length=0)
+        ax.set_xlim(-0.6, len(boxes) - 0.4)
+        ax.set_ylabel(ylabel)
+        ax.margins(y=0.06)
+        return _to_svg(fig, key, label)
+
+
+def _log_axis(ax) -> None:
+    """A logarithmic value axis labelled with plain numbers at 1, 2 and 5 times powers of ten."""
+    ax.set_yscale("log")
+    ax.yaxis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0)))
+    ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _pos: f"{v:g}"))
+    ax.yaxis.set_minor_formatter(NullFormatter())
+
+
+def _short_labels(periods: Sequence[str]) -> list[str]:
+    """Drop a year prefix the periods share: 2026-W09 -> W09, 2026-02-03 -> 02-03."""
+    years = {p[:4] for p in periods}
+    if len(years) == 1 and all(len(p) > 5 and p[4] == "-" for p in periods):
+        return [p[5:] for p in periods]
+    return list(periods)
+
+
+def _period_ticks(ax, periods: Sequence[str], most: int = 6) -> None:
+    """At most ``most`` evenly spaced period labels, counted back from the latest one."""
+    n = len(periods)
+    step = max(1, math.ceil((n - 1) / max(1, most - 1))) if n > 1 else 1
+    idx = list(range(n - 1, -1, -step))[::-1]
+    labels = _short_labels(periods)
+    ax.set_xticks(idx, [labels[i] for i in idx])
+    ax.set_xlim(-0.5, n - 0.5)
+
+
+def trend_svg(series: Sequence[tuple[str, Sequence[Point]]], periods: Sequence[str], *, key: str,
+              label: str, ylabel: str, columns: int = 4, log_scale: bool = False) -> str:
+    """One small panel per segment: its mean and 95% interval per period (dark), the other
+    segments' means behind it (light grey); a period where the segment was flagged
+    gets a coloured ▲ (high) or ▼ (low) marker."""
+    k = max(1, len(series))
+    cols = min(columns, k)
+    rows = math.ceil(k / cols)
+    with _LOCK, matplotlib.rc_context(RC):
+        fig = _figure(8.4, 0.55 + 1.75 * rows, top=0.25, bottom=0.3, hspace=0.32, wspace=0.1)
+        axes = fig.subplots(rows, cols, sharex=True, sharey=True, squeeze=False)
+        if log_scale:
+            _log_axis(axes[0][0])  # shared with every panel
+        for n, (segment, points) in enumerate(series):
+            ax = axes[n // cols][n % cols]
+            ax.grid(axis="y")
+            ax.set_axisbelow(True)
+            for other, opoints in series:
+                if other != segment:
+                    ax.plot(*_line(opoints, len(periods)), color=FAINT, linewidth=1.0, zorder=1)
+            xs, ys = _line(points, len(periods))
+            ax.plot(xs, ys, color=INK, linewidth=1.4, zorder=3)
+            bars = [p for p in points if _finite(p.low, p.high)]
+            if bars:
+                ax.vlines([p.index for p in bars], [p.low for p in bars], [p.high for p in bars], color=INK,
+                          linewidth=1.0, alpha=0.55, zorder=2)
+            for flag, marker, size, colour in ((None, "o", 2.8, INK), ("high", "^", 6, HIGH), ("low", "v", 6, LOW)):
+                pts = [p for p in points if _finite(p.mean) and (p.flag if p.flag in FLAG_COLOUR else None) == flag]
+                if pts:
+                    ax.plot([p.index for p in pts], [p.mean for p in pts], marker=marker, markersize=size,
+                            color=colour, linestyle="none", zorder=4)
+            ax.set_title(segment, loc="left")
+            _period_ticks(ax, periods, most=4)
+            if n % cols == 0:
+                ax.set_ylabel(ylabel)
+        for n in range(len(series), rows * cols):
+            axes[n // cols][n % cols].set_visible(False)
+        return _to_svg(fig, key, label)
+
+
+def _line(points: Sequence[Point], n: int) -> tuple[list[float], list[float]]:
+    """x and y for a line with gaps where a period has no mean."""
+    ys = [math.nan] * n
+    for p in points:
+        ys[p.index] = p.mean if _finite(p.mean) else math.nan
+    return list(range(n)), ys
+
+
+EVENT_STYLE = {
+    # kind: (marker, colour, words for the caption, words for the legend)
+    "emerged": ("^", HIGH, "difference emerged", "emerged"),
+    "cleared": ("v", GREEN, "difference cleared", "cleared"),
+    "assumption_broken": ("X", ORANGE, "assumption check failed", "check failed"),
+}
+
+Q_FLOOR = 1e-12
+
+
+def qvalue_svg(periods: Sequence[str], q: Sequence[float], level: float,
+               events: Sequence[tuple[int, str]], *, key: str, label: str,
+               failing: Sequence[bool] = ()) -> str:
+    """The q-value per period on a log scale (values below 1e-12 drawn at 1e-12), the
+    false-discovery level as a dashed line, filled dots where significant, a light
+    band behind the periods where a watched assumption check failed, and a strip of
+    event markers above the chart (one marker per kind per period)."""
+    with _LOCK, matplotlib.rc_context(RC):
+        fig = _figure(8.4, 2.7, right=0.5, top=0.05, bottom=0.62, hspace=0.08)
+        strip, ax = fig.subplots(2, 1, sharex=True, height_ratios=[0.5, 5])
+        ax.set_yscale("log")
+        ax.grid(axis="y", which="major")
+        ax.set_axisbelow(True)
+        xs = list(range(len(periods)))
+        ys = [max(v, Q_FLOOR) if _finite(v) else math.nan for v in q]
+        finite = [y for y in ys if _finite(y)]
+        bottom = min([level / 10, *finite]) / 3 if finite else level / 100
+        ax.set_ylim(bottom, 1.6)
+        shaded = False
+        for i, bad in enumerate(failing):
+            if bad:
+                ax.axvspan(i - 0.5, i + 0.5, color="#fbe9c6", linewidth=0, zorder=0)
+                shaded = True
+        ax.axhline(level, color=HIGH, linestyle=(0, (5, 3)), linewidth=1.2, zorder=2)
+        ax.annotate(f"level\n{level:g}", (1, level), xytext=(5, 0), textcoords="offset points",
+                    xycoords=("axes fraction", "data"), color=HIGH, ha="left", va="center", fontsize=8)
+        ax.plot(xs, ys, color=LOW, linewidth=1.4, zorder=3)
+        for sig in (True, False):
+            pts = [(x, y) for x, y in zip(xs, ys) if _finite(y) and (y <= level) == sig]
+            if pts:
+                ax.plot([x for x, _ in pts], [y for _, y in pts], marker="o", markersize=5, linestyle="none",
+                        zorder=4, markeredgecolor=LOW, markerfacecolor=LOW if sig else "white",
+                        markeredgewidth=1.2)
+        shown = []
+        rows = {"emerged": 1, "cleared": 1, "assumption_broken": 0}
+        for kind, (marker, colour, _, _) in EVENT_STYLE.items():
+            idx = sorted({i for i, k in events if k == kind})
+            if idx:
+                strip.plot(idx, [rows[kind]] * len(idx), marker=marker, markersize=6.5, color=colour,
+                           linestyle="none", clip_on=False)
+                shown.append(kind)
+        strip.set_ylim(-0.6, 1.6)
+        strip.set_yticks([])
+        strip.tick_params(axis="x", length=0, labelbottom=False)
+        for side in ("left", "bottom"):
+            strip.spines[side].set_visible(False)
+        strip.set_ylabel("events", rotation=0, ha="right", va="center", fontsize=8, color="#56606b")
+        ax.yaxis.set_minor_formatter(NullFormatter())
+        ax.yaxis.set_major_locator(LogLocator(base=10, numticks=6))
+        ax.set_ylabel("q-value (log scale)")
+        _period_ticks(ax, periods, most=8)
+        handles = [
+            Line2D([], [], color=LOW, marker="o", markerfacecolor=LOW, label="q (filled: at or below level)"),
+            Line2D([], [], color=HIGH, linestyle=(0, (5, 3)), label="level"),
+        ] + [
+            Line2D([], [], color=EVENT_STYLE[k][1], marker=EVENT_STYLE[k][0], linestyle="none",
+                   label="event: " + EVENT_STYLE[k][3])
+            for k in shown
+        ]
+        if shaded:
+            handles.append(Rectangle((0, 0), 1, 1, facecolor="#fbe9c6", label="watched check failing"))
+        fig.legend(handles=handles, loc="lower center", bbox_to_anchor=(0.5, 0.0), ncols=len(handles),
+                   fontsize=8, handlelength=2.0)
+        return _to_svg(fig, key, label)
+
+
+# ------------------------------------------------------------------ SVG text
+
+_XML_HEAD = re.compile(r"<\?xml[^>]*\?>\s*|<!DOCTYPE[^>]*>\s*", re.S)
+_METADATA = re.compile(r"<metadata>.*?</metadata>\s*", re.S)
+_ROOT = re.compile(r"<svg\b[^>]*>")
+_ID = re.compile(r'\bid="([^"]+)"')
+_HREF = re.compile(r'href="#([^"]+)"')
+_URL = re.compile(r"url\(#([^)]+)\)")
+_VIEWBOX = re.compile(r'viewBox="([^"]+)"')
+_BETWEEN_TAGS = re.compile(r">\s+<")
+_NEWLINES = re.compile(r"\s*\n\s*")
+_DECIMALS = re.compile(r"-?\d+\.\d{3,}")
+_PATH_DATA = re.compile(r' (d|x|y|width|height)="([^"]*)"')  # coordinates in pt; never transforms
+
+
+def _round2(m: re.Match) -> str:
+    return f"{float(m.group(0)):.2f}"
+
+
+def _to_svg(fig: Figure, key: str, label: str) -> str:
+    """The figure as an inline ``<svg>`` element for an HTML page (see the module notes)."""
+    buf = io.StringIO()
+    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None})
+    text = _METADATA.sub("", _XML_HEAD.sub("", buf.getvalue()))
+    # smaller: no indentation, one line per path, 0.01 pt precision, only the ids something refers to
+    text = _NEWLINES.sub(" ", _BETWEEN_TAGS.sub("><", text))
+    text = _PATH_DATA.sub(lambda m: f' {m.group(1)}="' + _DECIMALS.sub(_round2, m.group(2)) + '"', text)
+    used = set(_HREF.findall(text)) | set(_URL.findall(text))
+    text = _ID.sub(lambda m: f'id="{key}-{m.group(1)}"' if m.group(1) in used else "", text)
+    text = _HREF.sub(lambda m: f'href="#{key}-{m.group(1)}"', text)
+    text = _URL.sub(lambda m: f"url(#{key}-{m.group(1)})", text)
+    root = _ROOT.search(text)
+    if root is None:  # pragma: no cover - matplotlib always writes one
+        raise RuntimeError("matplotlib wrote no <svg> element")
+    viewbox = _VIEWBOX.search(root.group(0))
+    safe = html.escape(label, quote=True)
+    new_root = (f'<svg class="chart" role="img" aria-label="{safe}" '
+                f'viewBox="{viewbox.group(1) if viewbox else ""}" preserveAspectRatio="xMidYMid meet">'
+                f"<title>{html.escape(label)}</title>")
+    text = text[:root.start()] + new_root + text[root.end():]
+    return text.strip()
