@@ -68,7 +68,7 @@ from email.message import EmailMessage
 from email.utils import formatdate
 from html import escape
 from pathlib import Path
-from typing import Any, Mapping, Protocol, Sequence
+from typing import Any, Callable, Mapping, Protocol, Sequence
 
 from .clock import Clock
 from .config import CommandAlert, EmailAlert, JobConfig, LogAlert, WebhookAlert
@@ -291,6 +291,7 @@ class EmailSink:
 
     cfg: EmailAlert
     recipient: str
+    attachment: Callable[[str], tuple[str, str]] | None = None  # period -> (file name, HTML)
 
     @property
     def channel(self) -> str:
@@ -313,6 +314,13 @@ class EmailSink:
             f"<html><body><p>segwatch: {escape(job)}, period {escape(str(period))}</p><ul>{items}</ul>"
             "<p><small>Statistical significance is not practical importance; review before acting.</small></p>"
             "</body></html>", subtype="html")
+        if self.attachment is not None and period is not None:
+            try:
+                name, html = self.attachment(period)
+            except Exception as exc:  # noqa: BLE001 - a report that cannot be drawn must not block the alert
+                log.warning("report for %s %s not attached: %s", job, period, exc)
+            else:
+                msg.add_attachment(html.encode("utf-8"), maintype="text", subtype="html", filename=name)
         return msg
 
     def send(self, job: str, period: str | None, events: Sequence[Mapping[str, Any]]) -> None:
@@ -358,8 +366,12 @@ def _text(raw: bytes | str) -> str:
     return " ".join(text.split())
 
 
-def build_sinks(job: JobConfig) -> list[Sink]:
-    """One sink per configured alert, in config order."""
+def build_sinks(job: JobConfig, attachment: Callable[[str], tuple[str, str]] | None = None) -> list[Sink]:
+    """One sink per configured alert, in config order.
+
+    ``attachment`` (period -> file name and HTML) is attached to email digests; the
+    runner passes the report when ``report.attach`` is set.
+    """
     sinks: list[Sink] = []
     for a in job.alerts:
         if isinstance(a, LogAlert):
@@ -369,7 +381,7 @@ def build_sinks(job: JobConfig) -> list[Sink]:
         elif isinstance(a, CommandAlert):
             sinks.append(CommandSink(tuple(a.run), a.timeout))
         elif isinstance(a, EmailAlert):
-            sinks.extend(EmailSink(a, addr) for addr in a.to)
+            sinks.extend(EmailSink(a, addr, attachment) for addr in a.to)
     return sinks
 
 

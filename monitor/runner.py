@@ -94,7 +94,13 @@ class Job:
         self._ledger: Ledger | None = None
         self.lease_seconds = lease_seconds
         self.relay_wait = relay_wait
-        self.sinks = build_sinks(config)
+        self.sinks = build_sinks(config, self._report_attachment if config.report.attach else None)
+
+    def _report_attachment(self, period: str) -> tuple[str, str]:
+        """The stored period's HTML report, for email digests (``report.attach``)."""
+        from .report import report_html  # draws with matplotlib: imported only when needed
+
+        return f"{self.config.job}-{period}.html", report_html(self.history, self.config, period)
 
     @property
     def source(self) -> Source:

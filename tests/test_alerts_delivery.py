@@ -446,3 +446,22 @@ def test_alerts_retry_that_fails_again_exits_1(tmp_path, hook, capsys):
     assert doc["retry"]["retrying"] > 0 and doc["retry"]["sent"] == 0
     assert {a["status"] for a in doc["alerts"]} == {"pending"}
     assert all(a["last_error"].endswith("answered HTTP 503 Service Unavailable") for a in doc["alerts"])
+
+
+def test_email_digest_attaches_the_report_when_asked(tmp_path, smtp, capsys):
+    cfg = _project(tmp_path, "http://127.0.0.1:9/unused")
+    text = cfg.read_text()
+    text = text[:text.index("alerts:")] + (
+        f"alerts:\n  - type: email\n    to: [ops@example.com]\n    from: segwatch@example.com\n"
+        f"    smtp: {{host: 127.0.0.1, port: {smtp.port}, timeout: 5}}\n"
+        "report: {attach: true, periods: 4}\n")
+    cfg.write_text(text)
+    from monitor.cli import main
+
+    assert main(["run", str(cfg), "--period", "2026-W11"]) == 0
+    assert len(smtp.received) == 1
+    msg = message_from_bytes(smtp.received[0][1])
+    files = {p.get_filename(): p.get_payload(decode=True).decode() for p in msg.walk() if p.get_filename()}
+    assert list(files) == ["hubs-2026-W11.html"]
+    html = files["hubs-2026-W11.html"]
+    assert html.startswith("<!DOCTYPE html>") and "dwell" in html and "2026-W11" in html
