@@ -40,6 +40,7 @@ import pandas as pd
 from scipy import integrate, optimize, special, stats
 
 from monitor.stats import multiplicity
+from monitor.stats.studentized import srange_ppf, srange_sf
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from monitor.stats.summary import Moments
@@ -437,7 +438,7 @@ def tukey_kramer(
     ``se = sqrt(MSE / 2 * (1/n_i + 1/n_j))``, ``q = |diff| / se``,
     ``p = P(Q_{k, N-k} > q)``, interval ``diff -/+ q_{conf; k, N-k} * se``,
 
-    with Q the studentized range distribution (``scipy.stats.studentized_range``).
+    with Q the studentized range distribution (:mod:`monitor.stats.studentized`).
     ``Pair.statistic`` is the t-like ``diff / sqrt(MSE (1/n_i + 1/n_j))``
     (``q / sqrt(2)``). Assumptions: independent records, normal errors and
     equal variances in every segment. The procedure is exact for equal sizes and
@@ -491,7 +492,7 @@ def _tukey_core(
     else:
         mse = sum(summaries[i].m2 for i in present) / df
     q_crit = (
-        float(stats.studentized_range.ppf(confidence, k, df)) if usable else _NAN
+        float(srange_ppf(confidence, k, df)) if usable else _NAN
     )
     pairs = []
     for i, j in _upper_pairs(len(labels)):
@@ -506,7 +507,7 @@ def _tukey_core(
         se_t = math.sqrt(mse * (1.0 / si.n + 1.0 / sj.n))
         se_q = se_t / math.sqrt(2.0)
         q = abs(diff) / se_q
-        p = _clip_p(float(stats.studentized_range.sf(q, k, df)))
+        p = _clip_p(float(srange_sf(q, k, df)))
         half = q_crit * se_q
         pairs.append(
             Pair(labels[i], labels[j], diff, se_t, diff / se_t, float(df), p, diff - half, diff + half)
@@ -610,8 +611,8 @@ def _games_howell_pairs(
         se = math.sqrt(vi + vj)
         df = (vi + vj) ** 2 / (vi**2 / (si.n - 1) + vj**2 / (sj.n - 1))
         t = diff / se
-        p = _clip_p(float(stats.studentized_range.sf(math.sqrt(2.0) * abs(t), k, df)))
-        half = float(stats.studentized_range.ppf(confidence, k, df)) * se / math.sqrt(2.0)
+        p = _clip_p(float(srange_sf(math.sqrt(2.0) * abs(t), k, df)))
+        half = float(srange_ppf(confidence, k, df)) * se / math.sqrt(2.0)
         pairs.append(Pair(labels[i], labels[j], diff, se, t, df, p, diff - half, diff + half))
     if flat_pair_seen:
         notes.append(
