@@ -17,6 +17,12 @@ Sources, named again beside each check:
 * the handbook upper points in shared/reference/published_examples.json
   (Harter 1960, from memory, 3 decimals).
 
+The interpolated fast path (``monitor.stats.srange_table.srange_sf_fast``) is
+held against the same references (scipy on its grid, the exact k = 2 law, the
+nested quadrature, including live points beyond the table) and, densely, against
+the exact routine of this module for every k from 2 to 50: the requirement is
+1e-9 absolute and 1e-6 relative for tails of at least 1e-10.
+
 Which reference to trust where: scipy's ``studentized_range`` is accurate to
 ~1e-13 in absolute terms for moderate q, so its *relative* accuracy fails below
 ~1e-7 (e.g. 1.000162e-09 for an exact 1e-09 at k = 2, df = 1000), and for
@@ -40,6 +46,7 @@ import numpy as np
 import pytest
 from scipy import integrate, special, stats
 
+from monitor.stats.srange_table import srange_sf_fast
 from monitor.stats.studentized import srange_cdf, srange_ppf, srange_sf
 
 pytestmark = pytest.mark.filterwarnings("error")
@@ -433,3 +440,125 @@ class TestQuantile:
         q = srange_ppf(p, 6, 24.7)
         # reference: a quantile function is increasing; Harter's table orders q_0.95 < q_0.99
         assert (np.diff(q) > 0).all()
+
+
+# ---------------------------------------------------------------------------
+def _dense_sample(k: int, size: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    """(q, df) spread over the whole plane, placed without the code under test.
+
+    df: log-uniform in [2, 1e5] (not whole), some whole numbers, some near the
+    table's edge at 8, some very large, some inf. q: uniform over the bulk
+    [0, 7], and Bonferroni-placed (``_bonferroni_q``) at tail levels
+    log-uniform in [1e-22, 1].
+    """
+    df = np.exp(rng.uniform(math.log(2.0), math.log(1e5), size))
+    kind = rng.random(size)
+    df[kind < 0.1] = rng.integers(2, 60, int(np.count_nonzero(kind < 0.1)))
+    near = (kind >= 0.1) & (kind < 0.15)
+    df[near] = 8.0 + rng.uniform(-0.5, 0.5, int(np.count_nonzero(near)))
+    big = (kind >= 0.15) & (kind < 0.2)
+    df[big] = 10.0 ** rng.uniform(5, 8, int(np.count_nonzero(big)))
+    df[kind >= 0.92] = INF
+    level = 10.0 ** rng.uniform(-22, 0, size)
+    tail_q = math.sqrt(2.0) * special.stdtrit(df, 1.0 - level / (k * (k - 1)))
+    q = np.where(rng.random(size) < 0.4, rng.uniform(0.0, 7.0, size), tail_q)
+    return q, df
+
+
+class TestFastTable:
+    """``srange_sf_fast``: per-k interpolation tables with exact fallbacks."""
+
+    def test_dense_against_exact_for_every_k(self):
+        rng = np.random.default_rng(2024)
+        worst_abs = worst_rel = 0.0
+        for k in range(2, 51):
+            q, df = _dense_sample(k, 240, rng)
+            fast = srange_sf_fast(q, k, df)
+            # reference: the exact quadrature of this module (itself held against scipy,
+            # Student's t and the nested quadrature above)
+            exact = srange_sf(q, k, df)
+            big = exact >= 1e-10
+            assert big.sum() > 100 and (exact < 1e-10).sum() > 20
+            err = np.abs(fast - exact)
+            rel = err[big] / exact[big]
+            # the requirement: 1e-9 absolute, 1e-6 relative for tails >= 1e-10
+            assert err.max() <= 1e-9, (k, q[err.argmax()], df[err.argmax()])
+            assert rel.max() <= 1e-6, (k, q[big][rel.argmax()], df[big][rel.argmax()])
+            worst_abs, worst_rel = max(worst_abs, err.max()), max(worst_rel, rel.max())
+        # what the module docstring claims in practice (~1e-10 absolute, ~1e-8 relative)
+        assert worst_abs < 2e-10 and worst_rel < 2e-8
+
+    def test_against_scipy(self, scipy_grid):
+        q, k, df, ref = scipy_grid.T
+        got = srange_sf_fast(q, k, df)
+        # reference: scipy.stats.studentized_range.sf (as for the exact routine above)
+        np.testing.assert_allclose(got, ref, rtol=0, atol=1e-9)
+        big = ref >= 1e-5
+        np.testing.assert_allclose(got[big], ref[big], rtol=1e-6)
+
+    @pytest.mark.parametrize("df", (8, 9.5, 20.5, 57.3, 120, 1000, 1e6, INF))
+    def test_two_means_is_students_t_deep_into_the_tail(self, df):
+        levels = 10.0 ** -np.arange(0.0, 86.0, 2.5)
+        q = math.sqrt(2.0) * special.stdtrit(df, 1.0 - levels / 2.0)
+        q = np.concatenate([q, q[-1] * np.array([1.05, 1.2, 1.5])])  # beyond the table too
+        # reference: exact, P(Q > q) = P(|T_df| > q / sqrt(2)) (scipy.special.stdtr)
+        exact = 2.0 * special.stdtr(df, -q / math.sqrt(2.0))
+        assert exact.min() < 1e-86
+        np.testing.assert_allclose(srange_sf_fast(q, 2, df), exact, rtol=1e-8, atol=0)
+
+    def test_far_tail_against_nested_quadrature(self):
+        k, df, q, ref = np.array(TAIL_REFERENCE).T
+        # reference: _nested_quad_sf (scipy.integrate.quad), stored table above
+        np.testing.assert_allclose(srange_sf_fast(q, k, df), ref, rtol=1e-7, atol=0)
+
+    @pytest.mark.parametrize("k, df, q", [(20, 2000.0, 30.0), (20, 20.0, 1.4e5)])
+    def test_beyond_the_table_against_nested_quadrature(self, k, df, q):
+        # Bonferroni's value (k=20, df=2000) and the wide-window quadrature (df=20) past
+        # the table's edge at tails ~1e-87, where the public srange_sf returns 0
+        ref = _nested_quad_sf(q, k, df)
+        assert 1e-90 < ref < 1e-84
+        # reference: _nested_quad_sf (scipy.integrate.quad), computed live
+        assert srange_sf_fast(q, k, df) == pytest.approx(ref, rel=1e-8)
+
+    def test_outside_the_table_is_the_exact_routine(self):
+        rng = np.random.default_rng(8)
+        q = rng.uniform(0.1, 12.0, 40)
+        df = rng.uniform(1.0, 7.9, 40)  # below the table's df >= 8
+        # reference: srange_sf itself (documented delegation for df < 8 and k > 50)
+        np.testing.assert_allclose(srange_sf_fast(q, 6, df), srange_sf(q, 6, df), rtol=1e-11, atol=0)
+        np.testing.assert_allclose(srange_sf_fast(q, 80, 30.0), srange_sf(q, 80, 30.0), rtol=1e-11, atol=0)
+
+    @pytest.mark.parametrize("k, df", [(2, 9.0), (5, 20.5), (20, 57.3), (50, INF), (10, 1e6), (20, 2150.0)])
+    def test_decreasing_in_q(self, k, df):
+        q = np.linspace(0.0, 40.0, 40001)
+        sf = srange_sf_fast(q, k, df)
+        # reference: a tail probability: in [0, 1], starting at 1, non-increasing up to
+        # the interpolation error (near q = 0 the tail is 1 - 1e-11 and may wobble by
+        # ~1e-12; the requirement is 1e-9), strictly decreasing wherever it is neither ~1 nor ~0
+        assert sf[0] == 1.0 and ((sf >= 0) & (sf <= 1)).all()
+        assert np.diff(sf).max() <= 1e-11
+        inside = (sf[1:] > 1e-12) & (sf[:-1] < 1 - 1e-9)
+        assert (np.diff(sf)[inside] < 0).all()
+
+    def test_degenerate_arguments_and_shapes_follow_srange_sf(self):
+        # the documented policy is that of srange_sf: q <= 0 -> 1, q = inf -> 0, NaN for
+        # anything invalid; no exception, no warning
+        q = [0.0, -2.0, INF, -INF, np.nan, 3.0, 3.0, 3.0, 3.0, 3.0, 3.0, 3.0, 3.0]
+        k = [3, 3, 3, 3, 3, 1, 2.5, 1001, np.nan, 3, 3, 3, 3]
+        df = [10, 10, 10, 10, 10, 10, 10, 10, 10, 0.0, -1.0, np.nan, 10]
+        with np.errstate(all="raise"):
+            got = srange_sf_fast(q, k, df)
+        assert got[:4].tolist() == [1.0, 1.0, 0.0, 1.0]
+        assert np.isnan(got[4:12]).all()
+        # reference: srange_sf on the one valid entry
+        assert got[12] == pytest.approx(float(srange_sf(3.0, 3, 10)), rel=1e-9)
+        assert isinstance(srange_sf_fast(3.0, 3, 10), np.float64)
+        assert srange_sf_fast([[1.0], [2.0]], [3, 4, 5], 10).shape == (2, 3)
+
+    def test_bad_arguments_are_refused_in_the_same_words(self):
+        with pytest.raises(ValueError) as err:
+            srange_sf_fast("3.5", 3, 10)
+        assert str(err.value) == "q must be a real number or an array of real numbers; got str"
+        with pytest.raises(ValueError) as err:
+            srange_sf_fast([1.0, 2.0, 3.0], [3, 4], 10)
+        assert str(err.value) == "q, k and df must broadcast to one shape; got shapes (3,), (2,) and ()"

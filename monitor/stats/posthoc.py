@@ -494,23 +494,34 @@ def _tukey_core(
     q_crit = (
         float(srange_ppf(confidence, k, df)) if usable else _NAN
     )
-    pairs = []
+    # first the pairs' statistics, then all their p-values in one vectorised call
+    rows: list[tuple[int, int, float, float, float] | None] = []
     for i, j in _upper_pairs(len(labels)):
+        si, sj = summaries[i], summaries[j]
+        if si.n == 0 or sj.n == 0 or not usable:
+            rows.append(None)
+            continue
+        diff = si.mean - sj.mean
+        se_t = math.sqrt(mse * (1.0 / si.n + 1.0 / sj.n))
+        se_q = se_t / math.sqrt(2.0)
+        rows.append((i, j, diff, se_t, abs(diff) / se_q))
+    q_values = [r[4] for r in rows if r is not None]
+    p_values = iter(_clipped(srange_sf(np.array(q_values), k, df)) if q_values else ())
+    pairs = []
+    for (i, j), row in zip(_upper_pairs(len(labels)), rows):
         si, sj = summaries[i], summaries[j]
         if si.n == 0 or sj.n == 0:
             pairs.append(_nan_pair(labels[i], labels[j]))
             continue
         diff = si.mean - sj.mean
-        if not usable:
+        if row is None:
             pairs.append(_nan_pair(labels[i], labels[j], diff=diff, df=float(df) if df >= 1 else _NAN))
             continue
-        se_t = math.sqrt(mse * (1.0 / si.n + 1.0 / sj.n))
-        se_q = se_t / math.sqrt(2.0)
-        q = abs(diff) / se_q
-        p = _clip_p(float(srange_sf(q, k, df)))
-        half = q_crit * se_q
+        _, _, diff, se_t, _ = row
+        half = q_crit * se_t / math.sqrt(2.0)
         pairs.append(
-            Pair(labels[i], labels[j], diff, se_t, diff / se_t, float(df), p, diff - half, diff + half)
+            Pair(labels[i], labels[j], diff, se_t, diff / se_t, float(df), next(p_values),
+                 diff - half, diff + half)
         )
     return PostHocResult("tukey-kramer", tuple(pairs), confidence, _join(notes))
 
@@ -593,26 +604,41 @@ def _games_howell_pairs(
             f"{'its' if one else 'their'} pairs are NaN"
         )
     flat_pair_seen = False
-    pairs = []
+    # first the pairs' statistics, then all p-values and all critical values in
+    # one vectorised call each (every pair has its own df)
+    rows: list[tuple[float, float, float, float] | None] = []
     for i, j in index_pairs:
+        si, sj = summaries[i], summaries[j]
+        if si.n == 0 or sj.n == 0 or si.n < 2 or sj.n < 2 or k < 2:
+            rows.append(None)
+            continue
+        if si.flat and sj.flat:
+            flat_pair_seen = True
+            rows.append(None)
+            continue
+        vi, vj = si.var / si.n, sj.var / sj.n
+        se = math.sqrt(vi + vj)
+        df = (vi + vj) ** 2 / (vi**2 / (si.n - 1) + vj**2 / (sj.n - 1))
+        diff = si.mean - sj.mean
+        rows.append((diff, se, df, diff / se))
+    computed = [r for r in rows if r is not None]
+    if computed:
+        t_abs = np.array([abs(r[3]) for r in computed])
+        dfs = np.array([r[2] for r in computed])
+        p_iter = iter(_clipped(srange_sf(math.sqrt(2.0) * t_abs, k, dfs)))
+        q_iter = iter(np.atleast_1d(srange_ppf(confidence, k, dfs)).tolist())
+    pairs = []
+    for (i, j), row in zip(index_pairs, rows):
         si, sj = summaries[i], summaries[j]
         if si.n == 0 or sj.n == 0:
             pairs.append(_nan_pair(labels[i], labels[j]))
             continue
-        diff = si.mean - sj.mean
-        if si.n < 2 or sj.n < 2 or k < 2:
-            pairs.append(_nan_pair(labels[i], labels[j], diff=diff))
+        if row is None:
+            pairs.append(_nan_pair(labels[i], labels[j], diff=si.mean - sj.mean))
             continue
-        vi, vj = si.var / si.n, sj.var / sj.n
-        if si.flat and sj.flat:
-            flat_pair_seen = True
-            pairs.append(_nan_pair(labels[i], labels[j], diff=diff))
-            continue
-        se = math.sqrt(vi + vj)
-        df = (vi + vj) ** 2 / (vi**2 / (si.n - 1) + vj**2 / (sj.n - 1))
-        t = diff / se
-        p = _clip_p(float(srange_sf(math.sqrt(2.0) * abs(t), k, df)))
-        half = float(srange_ppf(confidence, k, df)) * se / math.sqrt(2.0)
+        diff, se, df, t = row
+        p = next(p_iter)
+        half = next(q_iter) * se / math.sqrt(2.0)
         pairs.append(Pair(labels[i], labels[j], diff, se, t, df, p, diff - half, diff + half))
     if flat_pair_seen:
         notes.append(
@@ -998,6 +1024,11 @@ def _join(notes: list[str]) -> str | None:
         return None
     text = "; ".join(notes)
     return text[0].upper() + text[1:] + "."
+
+
+def _clipped(p: np.ndarray) -> list[float]:
+    """p-values as Python floats in [0, 1] (NaN stays NaN)."""
+    return np.clip(np.atleast_1d(p), 0.0, 1.0).tolist()
 
 
 def _clip_p(p: float) -> float:

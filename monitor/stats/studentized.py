@@ -11,6 +11,11 @@ module computes them by fixed-node quadrature, so a whole vector of comparisons
 * :func:`srange_ppf` - the quantile ``q`` with ``P(Q <= q) = p`` (the critical
   value of simultaneous intervals).
 
+For large batches of tail probabilities,
+:func:`monitor.stats.srange_table.srange_sf_fast` interpolates tables built
+from this module's quadrature (~1e-10 absolute instead of ~1e-12 relative,
+about a hundred times faster).
+
 Example
 -------
 >>> from monitor.stats.studentized import srange_ppf, srange_sf
@@ -37,18 +42,23 @@ is positive, so ``P(Q > q)`` keeps its relative accuracy far into the tail.
 (The bracket must keep ``Phi(z)^(k-1)``: ``k phi(z) Phi(z)^(k-1)`` is the
 density of the largest value, and integrates to 1.)
 
-* Inner integral (2), once per ``k`` (cached; ~20 ms): composite
+* Inner integral (2), once per ``k`` (cached; ~40 ms): composite
   Gauss-Legendre in ``z`` (10 nodes on each half-unit panel of
-  ``-9 <= z <= 19``) gives ``log R`` at the Chebyshev points of the unit
-  panels of ``0 <= w <= 20``; a degree-20 Chebyshev series on each is then
-  re-expanded as degree-8 polynomials on panels of width 1/8 for fast
-  evaluation. ``log R`` is smooth and at most ~100 in size there, and the
-  table reproduces (2) to ~1e-14 relative in ``R``. Beyond ``w = 20``,
-  ``R(w) < 1e-38`` (any ``k <= 1000``) and is taken as 0.
+  ``-9 <= z <= 29``; the integrand of ``R(w)`` peaks near ``z = w/2``) gives
+  ``log R`` at the Chebyshev points of the unit panels of ``0 <= w <= 40``; a
+  degree-20 Chebyshev series on each is then re-expanded as degree-8
+  polynomials on panels of width 1/8 for fast evaluation. ``log R`` is smooth
+  and at most ~400 in size there, and the table reproduces (2) to ~1e-14
+  relative in ``R``. Beyond ``w = 40``, ``R(w) < 1e-170`` (any ``k <= 1000``)
+  and is taken as 0. (The range up to 40 serves the far tails of large
+  ``df``, where ``qS`` is large; the interpolation tables of
+  :mod:`monitor.stats.srange_table` are built on it.)
 * Outer integral (1), per value: ``h(u) = 2 a^a / Gamma(a) exp(-a g(u))``
   with ``a = df / 2`` and ``g(u) = e^(2u) - 1 - 2u``. The window
   ``a g(u) <= 60`` holds all but ``2 e^-60`` of the mass of ``S`` (Chernoff's
-  bound for the gamma law) and is cut where ``q e^u = 20``. The integrand is
+  bound for the gamma law) and is cut where ``q e^u = 40``. (Internally the
+  window can be widened, e.g. to ``a g(u) <= 300``, for tails far below
+  1e-20; the public functions keep 60.) The integrand is
   log-concave in ``u`` (``h`` is, and so is ``R(e^y)``: the order statistics
   of normal variables have a log-concave joint density, and Prekopa's theorem
   carries that to the range and on to its tail), hence has a single peak.
@@ -105,9 +115,9 @@ logger = logging.getLogger(__name__)
 # fixed nodes, computed once
 # ---------------------------------------------------------------------------
 #: The table of log R(w) covers 0 <= w <= _W_MAX.
-_W_MAX = 20.0
-#: Stage 1: a Chebyshev series of degree 20 on each unit panel of [0, 20].
-_PANELS = 20
+_W_MAX = 40.0
+#: Stage 1: a Chebyshev series of degree 20 on each unit panel of [0, 40].
+_PANELS = 40
 _CHEB_N = 21
 #: Stage 2 (fast evaluation): degree-8 local polynomials on panels of 1/8.
 _FINE_PER_UNIT = 8
@@ -115,7 +125,7 @@ _FINE_N = 9
 #: Largest number of means accepted (checked against scipy up to 1000).
 _K_MAX = 1000
 #: Inner integral (2): z in [_Z_LO, _Z_HI], half-unit panels, 10 nodes each.
-_Z_LO, _Z_HI, _Z_PANEL, _Z_NODES = -9.0, 19.0, 0.5, 10
+_Z_LO, _Z_HI, _Z_PANEL, _Z_NODES = -9.0, 29.0, 0.5, 10
 #: Smallest lower-tail probability whose quantile is resolved (see srange_ppf).
 _LOWEST_P = 1e-9
 #: Outer window: all but 2 exp(-_TAIL_T) of the mass of S.
@@ -163,7 +173,7 @@ for _j in range(_FINE_N):
 _CHEB_TO_POWER *= ((2.0 / _FINE_H) ** np.arange(_FINE_N))[:, None]
 del _j, _power
 #: grid for the peak search (linear interpolation is plenty there)
-_GRID_W = np.linspace(0.0, _W_MAX, 2001)
+_GRID_W = np.linspace(0.0, _W_MAX, 4001)
 
 _GL_X, _GL_W = np.polynomial.legendre.leggauss(_OUTER_NODES)
 _LOG2 = math.log(2.0)
@@ -305,14 +315,14 @@ def _log_scale_constant(a: np.ndarray) -> np.ndarray:
     return np.where(a < 20.0, direct(np.minimum(a, 20.0)), stirling(np.maximum(a, 20.0)))
 
 
-def _scale_window(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Bounds on the roots of ``a g(u) = _TAIL_T``: a window holding S's mass.
+def _scale_window(a: np.ndarray, tail_t: float = _TAIL_T) -> tuple[np.ndarray, np.ndarray]:
+    """Bounds on the roots of ``a g(u) = tail_t``: a window holding S's mass.
 
-    With ``r = _TAIL_T / a``: on the left ``g(u) >= y^2 / (2 + y)``, ``y = -2u``;
+    With ``r = tail_t / a``: on the left ``g(u) >= y^2 / (2 + y)``, ``y = -2u``;
     on the right ``g(u) >= 2 u^2`` and, for ``r >= 2.7``, ``g(u) >= e^(2u) / 2``
     at ``u = log(2r) / 2``. Both ends are therefore at or beyond the roots.
     """
-    r = _TAIL_T / a
+    r = tail_t / a
     low = -0.25 * (r + np.sqrt(r * (r + 8.0)))
     high = np.minimum(np.sqrt(0.5 * r), np.where(r >= 2.7, 0.5 * np.log(2.0 * r), np.inf))
     return low, high
@@ -322,9 +332,14 @@ def _scale_window(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 # the outer integral (1)
 # ---------------------------------------------------------------------------
 def _sf_pdf_one_k(
-    q: np.ndarray, k: int, df: np.ndarray, want_pdf: bool
+    q: np.ndarray, k: int, df: np.ndarray, want_pdf: bool, tail_t: float = _TAIL_T
 ) -> tuple[np.ndarray, np.ndarray | None]:
-    """``P(Q > q)`` (and the density) for one ``k``; ``0 < q < inf``, ``df > 0``."""
+    """``P(Q > q)`` (and the density) for one ``k``; ``0 < q < inf``, ``df > 0``.
+
+    ``tail_t`` sets the outer window (all but ``2 exp(-tail_t)`` of S's mass);
+    the public functions use ``_TAIL_T``, the interpolation tables of
+    :mod:`monitor.stats.srange_table` a wider one.
+    """
     tail = _range_tail(k)
     normal = np.isinf(df)
     if normal.any():  # S = 1: P(Q > q) = R(q); the rest as below
@@ -337,20 +352,20 @@ def _sf_pdf_one_k(
             pdf[inside] = -np.exp(log_r) * l1
         finite = ~normal
         if finite.any():
-            s, d = _sf_pdf_scaled(tail, q[finite], 0.5 * df[finite], want_pdf)
+            s, d = _sf_pdf_scaled(tail, q[finite], 0.5 * df[finite], want_pdf, tail_t)
             sf[finite] = s
             if want_pdf:
                 pdf[finite] = d
         return sf, pdf
-    return _sf_pdf_scaled(tail, q, 0.5 * df, want_pdf)
+    return _sf_pdf_scaled(tail, q, 0.5 * df, want_pdf, tail_t)
 
 
 def _sf_pdf_scaled(
-    tail: _RangeTail, q: np.ndarray, a: np.ndarray, want_pdf: bool
+    tail: _RangeTail, q: np.ndarray, a: np.ndarray, want_pdf: bool, tail_t: float = _TAIL_T
 ) -> tuple[np.ndarray, np.ndarray | None]:
     """Equation (1) for finite ``df = 2a``."""
-    low, high = _scale_window(a)
-    # beyond q S = 20 the range tail is below 1e-38; an empty window gives 0
+    low, high = _scale_window(a, tail_t)
+    # beyond q S = 40 the range tail is below 1e-170; an empty window gives 0
     high = np.maximum(np.minimum(high, np.log(_W_MAX / q)), low)
     peak, sigma = _peak(tail, q, a)
     u, weight = _panels(low, np.minimum(np.maximum(peak, low), high), high, sigma)
@@ -424,18 +439,18 @@ def _panels(
 
 
 def _sf_pdf(
-    q: np.ndarray, k: np.ndarray, df: np.ndarray, want_pdf: bool = False
+    q: np.ndarray, k: np.ndarray, df: np.ndarray, want_pdf: bool = False, tail_t: float = _TAIL_T
 ) -> tuple[np.ndarray, np.ndarray | None]:
     """Group 1-D arrays by k (valid inputs, ``0 < q < inf``) and integrate."""
     first = k[0]
     if k.size == 1 or (k == first).all():
-        sf, pdf = _sf_pdf_one_k(q, int(first), df, want_pdf)
+        sf, pdf = _sf_pdf_one_k(q, int(first), df, want_pdf, tail_t)
     else:
         sf = np.empty_like(q)
         pdf = np.empty_like(q) if want_pdf else None
         for kk in np.unique(k):
             at = k == kk
-            s, d = _sf_pdf_one_k(q[at], int(kk), df[at], want_pdf)
+            s, d = _sf_pdf_one_k(q[at], int(kk), df[at], want_pdf, tail_t)
             sf[at] = s
             if want_pdf:
                 pdf[at] = d
@@ -454,7 +469,7 @@ def _as_arrays(names: tuple[str, ...], values: tuple) -> list[np.ndarray]:
         try:
             if arr.dtype.kind not in "biufO":  # text, complex, dates, ...
                 raise TypeError
-            arr = arr.astype(float)
+            arr = arr.astype(float, copy=False)
         except (TypeError, ValueError):
             what = type(value).__name__
             if isinstance(value, np.ndarray):
