@@ -287,6 +287,9 @@ def analyse_metric(data: MetricInput, job: JobConfig, n_metrics: int = 1) -> Met
         names = ", ".join(f"{s.segment} (n={s.moments.n})" for s in dropped)
         notes.append(f"left out for having fewer than {min_n} values: {names}")
 
+    if data.sample_size is not None:
+        notes.append(f"rank test, checks and quantiles use a seeded sample of {data.sample_size} values "
+                     "(means, sds and the ANOVAs use every value)")
     labels = [s.segment for s in kept]
     groups = [s.moments for s in kept]
     samples = [s.values if s.values is not None else np.empty(0) for s in kept]

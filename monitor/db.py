@@ -1,9 +1,52 @@
-"""Small helpers shared by the source and the history: URL redaction and one-line
-database error texts."""
+"""Small helpers shared by the source and the history: URL redaction, one-line
+database error texts, source engines and the server version check.
+
+Server versions
+---------------
+segwatch's SQL (conditional aggregates written with ``CASE``, no ``FILTER``; window
+functions are the newest feature any of its queries may use) runs on these versions or
+newer; older servers are refused when the source is first reached, with a message that
+says what was found and what is needed (see :func:`check_server_version`):
+
+==============  ========  ==================================================
+engine          minimum   why
+==============  ========  ==================================================
+SQLite          3.25      window functions
+PostgreSQL      10        oldest release segwatch is supported on
+MariaDB         10.2      window functions
+MySQL           8.0       window functions
+DuckDB          any       (only the read-only open is required)
+==============  ========  ==================================================
+"""
 
 from __future__ import annotations
 
+import hashlib
+import logging
+import math
+import sqlite3
+from typing import Any
+
 import sqlalchemy as sa
+from sqlalchemy.engine import Engine
+from sqlalchemy.exc import SQLAlchemyError
+
+from .errors import SourceError
+
+log = logging.getLogger(__name__)
+
+#: Oldest supported server per engine (see the module notes).
+MIN_VERSIONS: dict[str, tuple[int, ...]] = {
+    "sqlite": (3, 25),
+    "postgresql": (10,),
+    "mariadb": (10, 2),
+    "mysql": (8, 0),
+}
+
+_ENGINE_NAMES = {"sqlite": "SQLite", "postgresql": "PostgreSQL", "mariadb": "MariaDB", "mysql": "MySQL"}
+
+#: Name of the md5 function segwatch registers on its own SQLite connections.
+SQLITE_MD5 = "segwatch_md5"
 
 
 def redact(url: str) -> str:
@@ -20,3 +63,214 @@ def one_line(exc: BaseException | None) -> str:
         return "unknown error"
     text = str(getattr(exc, "orig", None) or exc).strip().splitlines()
     return text[0] if text else type(exc).__name__
+
+
+# ------------------------------------------------------------------ engines
+
+
+def make_engine(url: str, *, read_only: bool = False) -> Engine:
+    """An engine for a source database.
+
+    Pre-ping and connection recycling as RELIABILITY.md asks; DuckDB files opened
+    read-only when ``read_only`` (DuckDB allows one writing process per file); on
+    SQLite, every connection gets the functions the push-down SQL needs
+    (:func:`install_sqlite_functions`).
+    """
+    kwargs: dict[str, Any] = {"pool_pre_ping": True, "pool_recycle": 1800}
+    if url.startswith("duckdb") and read_only:
+        kwargs["connect_args"] = {"read_only": True}
+    try:
+        engine = sa.create_engine(url, **kwargs)
+    except (SQLAlchemyError, ImportError, ValueError) as exc:
+        raise SourceError(f"cannot open database URL {redact(url)}: {one_line(exc)}") from exc
+    if engine.dialect.name == "sqlite":
+        sa.event.listen(engine, "connect", _on_sqlite_connect)
+    elif engine.dialect.name == "duckdb":
+        own_limit = "memory_limit" not in engine.url.query
+        sa.event.listen(engine, "connect", lambda conn, rec: _on_duckdb_connect(conn, own_limit))
+    return engine
+
+
+#: DuckDB runs inside segwatch's process; its memory limit unless the URL sets one
+#: (``duckdb:///file.duckdb?memory_limit=2GB``).
+DUCKDB_MEMORY_LIMIT = "256MB"
+
+
+def _on_duckdb_connect(dbapi_conn: Any, own_limit: bool) -> None:
+    # DuckDB draws a progress bar on stdout for long queries, which would mix into `run --json`
+    dbapi_conn.execute("SET enable_progress_bar = false")
+    if own_limit:
+        # its buffer pool would otherwise grow with the rows scanned (to 80% of RAM);
+        # one aggregate row per segment needs little of it
+        dbapi_conn.execute(f"SET memory_limit = '{DUCKDB_MEMORY_LIMIT}'")
+
+
+def _on_sqlite_connect(dbapi_conn: Any, _record: Any) -> None:
+    install_sqlite_functions(dbapi_conn)
+
+
+def sqlite_has_ln(dbapi_conn: sqlite3.Connection) -> bool:
+    """True if this SQLite build has the math functions (``ln``)."""
+    try:
+        dbapi_conn.execute("SELECT ln(1.0)").fetchone()
+    except sqlite3.OperationalError:
+        return False
+    return True
+
+
+def install_sqlite_functions(dbapi_conn: sqlite3.Connection, *, has_ln: bool | None = None) -> bool:
+    """Register the SQL functions segwatch needs on one SQLite connection.
+
+    * ``segwatch_md5(text)``: the lowercase hex MD5 of the UTF-8 text, as
+      ``md5()`` in PostgreSQL, MySQL and DuckDB, so a seeded sample is the same
+      rows on every engine (see :mod:`monitor.sampling`).
+    * ``ln(x)``: only when the build lacks SQLite's math functions (before 3.35, or
+      compiled without ``SQLITE_ENABLE_MATH_FUNCTIONS``). The Python version is
+      slower per row but gives the same doubles, so the push-down keeps working.
+
+    Returns True if a Python ``ln`` had to be registered.
+    """
+    dbapi_conn.create_function(SQLITE_MD5, 1, _md5_hex, deterministic=True)
+    if has_ln is None:
+        has_ln = sqlite_has_ln(dbapi_conn)
+    if not has_ln:
+        log.info("this SQLite build has no ln(); segwatch registered a Python ln() on its connection")
+        dbapi_conn.create_function("ln", 1, _ln, deterministic=True)
+        return True
+    return False
+
+
+def _md5_hex(text: Any) -> str | None:
+    if text is None:
+        return None
+    return hashlib.md5(str(text).encode("utf-8")).hexdigest()  # noqa: S324 - sampling, not security
+
+
+def _ln(x: Any) -> float | None:
+    try:
+        return math.log(float(x))
+    except (TypeError, ValueError):
+        return None
+
+
+# ------------------------------------------------------------------ versions
+
+
+def server_version(conn: sa.Connection) -> tuple[str, tuple[int, ...] | None]:
+    """The engine name (``mariadb`` apart from ``mysql``) and the server version."""
+    dialect = conn.dialect
+    name = dialect.name
+    if name == "sqlite":
+        return name, tuple(sqlite3.sqlite_version_info)
+    if name == "mysql" and getattr(dialect, "is_mariadb", False):
+        name = "mariadb"
+    info = dialect.server_version_info
+    if not info:
+        return name, None
+    return name, tuple(int(x) for x in info if isinstance(x, int))
+
+
+def format_version(version: tuple[int, ...] | None) -> str:
+    return ".".join(str(x) for x in version) if version else "unknown"
+
+
+def check_server_version(engine: str, version: tuple[int, ...] | None, where: str) -> None:
+    """Refuse a server older than segwatch supports.
+
+    Parameters
+    ----------
+    engine : str
+        ``sqlite``, ``postgresql``, ``mariadb``, ``mysql`` (others are not checked).
+    version : tuple of int or None
+        The server's version; None (unknown) passes.
+    where : str
+        The place to name in the message (e.g. the redacted source URL).
+
+    Raises
+    ------
+    SourceError
+        With a one-line message naming the engine, the version found and the minimum.
+    """
+    minimum = MIN_VERSIONS.get(engine)
+    if minimum is None or not version:
+        return
+    if tuple(version[: len(minimum)]) < minimum:
+        label = _ENGINE_NAMES[engine]
+        raise SourceError(
+            f"{where}: {label} {format_version(version)} is too old; segwatch needs {label} "
+            f"{format_version(minimum)} or newer (window functions); upgrade the server"
+            + (" (for SQLite: the library Python's sqlite3 module is built with)" if engine == "sqlite" else "")
+        )
+
+
+# ------------------------------------------------------------------ DuckDB reflection
+
+
+def reflect_duckdb_table(conn: sa.Connection, name: str, schema: str | None) -> sa.Table | None:
+    """Reflect a DuckDB table or view from ``information_schema`` (None if absent).
+
+    duckdb-engine's own reflection goes through PostgreSQL catalog tables that
+    DuckDB does not have under SQLAlchemy 2.1 (``pg_catalog.pg_collation``), so
+    segwatch reads the column names and types itself and maps the types it needs
+    (numbers, decimals with precision and scale, booleans, dates, timestamps, text);
+    any other type is kept as unknown. The primary key comes from
+    ``duckdb_constraints()``.
+    """
+    rows = conn.execute(
+        sa.text(
+            "SELECT column_name, data_type, numeric_precision, numeric_scale "
+            "FROM information_schema.columns "
+            "WHERE table_name = :name AND table_schema = COALESCE(:schema, current_schema()) "
+            "ORDER BY ordinal_position"
+        ),
+        {"name": name, "schema": schema},
+    ).all()
+    if not rows:
+        return None
+    pk_rows = conn.execute(
+        sa.text(
+            "SELECT constraint_column_names FROM duckdb_constraints() "
+            "WHERE table_name = :name AND schema_name = COALESCE(:schema, current_schema()) "
+            "AND constraint_type = 'PRIMARY KEY'"
+        ),
+        {"name": name, "schema": schema},
+    ).all()
+    pk = {c for (cols,) in pk_rows for c in (cols or [])}
+    columns = [
+        sa.Column(col, _duckdb_type(dtype, prec, scale), primary_key=col in pk)
+        for col, dtype, prec, scale in rows
+    ]
+    return sa.Table(name, sa.MetaData(), *columns, schema=schema)
+
+
+def duckdb_table_names(conn: sa.Connection, schema: str | None) -> list[str]:
+    """Tables and views of a DuckDB schema (for the 'no such table' message)."""
+    return [
+        r[0]
+        for r in conn.execute(
+            sa.text(
+                "SELECT table_name FROM information_schema.tables "
+                "WHERE table_schema = COALESCE(:schema, current_schema()) ORDER BY table_name"
+            ),
+            {"schema": schema},
+        )
+    ]
+
+
+_DUCKDB_TYPES: dict[str, Any] = {
+    "DOUBLE": sa.Double, "FLOAT": sa.Float, "REAL": sa.Float,
+    "TINYINT": sa.SmallInteger, "SMALLINT": sa.SmallInteger, "INTEGER": sa.Integer, "BIGINT": sa.BigInteger,
+    "HUGEINT": sa.BigInteger, "UTINYINT": sa.SmallInteger, "USMALLINT": sa.Integer, "UINTEGER": sa.BigInteger,
+    "UBIGINT": sa.BigInteger, "BOOLEAN": sa.Boolean, "DATE": sa.Date, "VARCHAR": sa.String, "TEXT": sa.String,
+    "TIMESTAMP": sa.DateTime, "TIMESTAMP_NS": sa.DateTime, "TIMESTAMP_MS": sa.DateTime, "TIMESTAMP_S": sa.DateTime,
+}
+
+
+def _duckdb_type(dtype: str, precision: Any, scale: Any) -> sa.types.TypeEngine:
+    text = (dtype or "").upper()
+    if text.startswith("DECIMAL") or text.startswith("NUMERIC"):
+        return sa.Numeric(precision, scale)
+    if text in ("TIMESTAMP WITH TIME ZONE", "TIMESTAMPTZ"):
+        return sa.DateTime(timezone=True)
+    kind = _DUCKDB_TYPES.get(text)
+    return kind() if kind is not None else sa.types.NullType()

@@ -16,15 +16,32 @@ timestamp column is compared depends on what it stores:
   (``source.naive_time: local``, the default) or as UTC (``naive_time: utc``);
 * SQLite stores timestamps as text, so the column is normalised with SQLite's
   ``datetime()`` and compared with text bounds of the same shape.
+
+Two ways to compute a period
+----------------------------
+``compute: pushdown`` (the default) sends one aggregate query per period and reads
+back per-segment sums (:mod:`monitor.pushdown`), plus the values the rank test and
+the value checks need: all of them while the period is small, a seeded sample of at
+most ``sampling.cap`` rows per segment otherwise (:mod:`monitor.sampling`). Before
+that, a probe reads at most a thousand rows to choose each metric's shift. On
+PostgreSQL and MySQL/MariaDB the queries of a period share one snapshot
+(``REPEATABLE READ``).
+
+``compute: local`` reads the period's rows (segment and metric columns only) and
+summarises them here (:func:`summarise_frame`). The push-down falls back to it, with
+a warning in the log, when a metric column is not numeric (e.g. text).
+
+Both give the same summaries (to rounding) and, while the values are not sampled,
+the same results.
 """
 
 from __future__ import annotations
 
 import logging
-import math
 import time
 from dataclasses import dataclass
 from datetime import datetime, timezone
+from decimal import Decimal
 from typing import Any, Sequence
 
 import numpy as np
@@ -33,17 +50,37 @@ import sqlalchemy as sa
 from sqlalchemy.engine import Engine
 from sqlalchemy.exc import NoSuchTableError, SQLAlchemyError
 
+from . import pushdown
 from .analysis import MetricInput, QualityCounts, SegmentInput
 from .config import JobConfig, MetricConfig, SourceConfig
-from .db import one_line, redact
+from .db import (
+    check_server_version,
+    duckdb_table_names,
+    format_version,
+    make_engine,
+    one_line,
+    redact,
+    reflect_duckdb_table,
+    server_version,
+)
 from .errors import ConfigError, SourceError
 from .periods import Period
+from .pushdown import Aggregate, EngineTraits, MetricPlan, Shift
+from .sampling import SamplePlan, plan_sample, smallest, thresholds
 from .stats.summary import Moments
+
+__all__ = ["PeriodData", "Source", "SourceInfo", "make_engine", "summarise_frame"]
 
 log = logging.getLogger(__name__)
 
 CONNECT_ATTEMPTS = 3
 RETRY_BASE_SECONDS = 0.5
+#: Re-reads of a sampled segment that came up short before all its rows are read.
+SAMPLE_RETRIES = 4
+#: Rows per chunk when reading the values query.
+FETCH_CHUNK = 20_000
+#: Engines whose queries of one period are run in one REPEATABLE READ transaction.
+_SNAPSHOT_ENGINES = ("postgresql", "mysql")
 
 
 @dataclass(frozen=True)
@@ -54,6 +91,8 @@ class PeriodData:
     rows: int  # rows in the window
     null_segment_rows: int  # rows whose segment is NULL (counted, not grouped)
     segments: tuple[str, ...]  # segments with at least one row in the window
+    compute: str = "local"  # how it was computed: "pushdown" or "local"
+    sampled: bool = False  # True when the values are a sample (see monitor.sampling)
 
 
 @dataclass(frozen=True)
@@ -65,17 +104,6 @@ class SourceInfo:
     columns: tuple[str, ...]
 
 
-def make_engine(url: str, *, read_only: bool = False) -> Engine:
-    """An engine with pre-ping and connection recycling (see RELIABILITY.md)."""
-    kwargs: dict[str, Any] = {"pool_pre_ping": True, "pool_recycle": 1800}
-    if url.startswith("duckdb") and read_only:
-        kwargs["connect_args"] = {"read_only": True}
-    try:
-        return sa.create_engine(url, **kwargs)
-    except (SQLAlchemyError, ImportError, ValueError) as exc:
-        raise SourceError(f"cannot open database URL {redact(url)}: {one_line(exc)}") from exc
-
-
 class Source:
     """The job's source table or query, reflected once per instance."""
 
@@ -84,6 +112,8 @@ class Source:
         self.cfg: SourceConfig = job.source
         self.engine = engine or make_engine(self.cfg.url, read_only=True)
         self._from: sa.FromClause | None = None
+        self._version: tuple[str, tuple[int, ...] | None] | None = None
+        self._fallback_logged = False
 
     # -------------------------------------------------------------- structure
 
@@ -97,14 +127,18 @@ class Source:
         where = f"{self.job.path}: source"
         try:
             with self._connect() as conn:
+                self._version = server_version(conn)
+                check_server_version(*self._version, where=f"source {redact(cfg.url)}")
                 if cfg.table is not None:
                     schema, _, name = cfg.table.rpartition(".")
                     try:
-                        rel: sa.FromClause = sa.Table(
-                            name, sa.MetaData(), schema=schema or None, autoload_with=conn
-                        )
+                        rel: sa.FromClause = self._reflect_table(conn, name, schema or None)
                     except NoSuchTableError:
-                        tables = sa.inspect(conn).get_table_names(schema=schema or None)
+                        tables = (
+                            duckdb_table_names(conn, schema or None)
+                            if conn.dialect.name == "duckdb"
+                            else sa.inspect(conn).get_table_names(schema=schema or None)
+                        )
                         raise ConfigError(
                             f"{where}.table: no table {cfg.table!r} in {redact(cfg.url)} "
                             f"(tables there: {', '.join(sorted(tables)) or 'none'})"
@@ -133,12 +167,20 @@ class Source:
                 )
         return rel
 
+    @staticmethod
+    def _reflect_table(conn: sa.Connection, name: str, schema: str | None) -> sa.Table:
+        if conn.dialect.name == "duckdb":
+            table = reflect_duckdb_table(conn, name, schema)
+            if table is None:
+                raise NoSuchTableError(name)
+            return table
+        return sa.Table(name, sa.MetaData(), schema=schema, autoload_with=conn)
+
     def describe(self) -> SourceInfo:
-        """Reach the source, check the columns and report the server version."""
+        """Reach the source, check the server version and the columns, and report them."""
         rel = self._relation()
-        with self._connect() as conn:
-            version = _server_version(conn)
-        return SourceInfo(self.engine.dialect.name, version, tuple(c.name for c in rel.columns))
+        name, version = self._version or ("unknown", None)
+        return SourceInfo(self.engine.dialect.name, format_version(version), tuple(c.name for c in rel.columns))
 
     # -------------------------------------------------------------- data
 
@@ -171,25 +213,139 @@ class Source:
         return period.start.replace(tzinfo=None), period.end.replace(tzinfo=None)
 
     def fetch(self, period: Period) -> PeriodData:
-        """Read the period's rows (segment and metric columns only) and summarise
-        them per segment and metric."""
+        """Summarise the period per segment and metric, in the database
+        (``compute: pushdown``) or here (``compute: local``); see the module notes."""
+        rel = self._relation()
+        if self.job.compute == "pushdown":
+            traits = EngineTraits.of(self.engine.dialect)
+            plans, reason = pushdown.plan_metrics(rel, self.job.metrics, traits)
+            if reason is None:
+                return self._fetch_pushdown(period, plans, traits)
+            if not self._fallback_logged:
+                log.warning("job %s: %s; computing locally (reading the rows) instead", self.job.job, reason)
+                self._fallback_logged = True
+        return self._fetch_local(period)
+
+    def _fetch_local(self, period: Period) -> PeriodData:
+        """Read the period's rows (segment and metric columns only) and summarise them."""
         rel = self._relation()
         seg = rel.c[self.cfg.segment_column]
         cols = [seg.label("__segment")]
         names = []
         for i, m in enumerate(self.job.metrics):
-            cols.append(rel.c[m.column].label(f"__m{i}"))
+            # the driver's own value: SQLAlchemy's MySQL DOUBLE type would round to 10 decimals
+            cols.append(sa.type_coerce(rel.c[m.column], sa.types.NullType()).label(f"__m{i}"))
             names.append(f"__m{i}")
         stmt = sa.select(*cols).where(self.window_clause(period))
         try:
             with self._connect() as conn:
                 result = conn.execute(stmt)
-                frame = pd.DataFrame(result.fetchall(), columns=["__segment", *names])
+                frame = pd.DataFrame(result.fetchall(), columns=["__segment", *names], dtype=object)
         except SQLAlchemyError as exc:
             raise SourceError(
                 f"{self.job.path}: reading period {period.ident} from {redact(self.cfg.url)} failed: {one_line(exc)}"
             ) from exc
         return summarise_frame(frame, self.job.metrics, names)
+
+    def _fetch_pushdown(self, period: Period, plans: tuple[MetricPlan, ...], traits: EngineTraits) -> PeriodData:
+        rel = self._relation()
+        where = self.window_clause(period)
+        seg_key = self.cfg.segment_column
+        sampling = self.job.sampling
+        step = "the shift probe"
+        try:
+            with self._connect() as conn:
+                if traits.name in _SNAPSHOT_ENGINES:
+                    conn = conn.execution_options(isolation_level="REPEATABLE READ")
+                with conn.begin():
+                    shifts = self._shifts(conn, rel, plans, where, traits)
+                    step = "the aggregate query"
+                    stmt = pushdown.aggregate_query(rel, seg_key, plans, where, shifts, traits)
+                    agg = pushdown.read_aggregate(conn.execute(stmt).mappings(), plans, shifts, traits)
+                    step = "the values query"
+                    plan = plan_sample(sampling.mode, sampling.cap, sampling.seed, agg.rows)
+                    values = self._values(conn, rel, plans, where, traits, agg, plan)
+        except SQLAlchemyError as exc:
+            raise SourceError(
+                f"{self.job.path}: {step} for period {period.ident} on {redact(self.cfg.url)} failed: "
+                f"{one_line(exc)} (compute: local reads the rows instead)"
+            ) from exc
+        inputs = []
+        for p in plans:
+            per = agg.metrics[p.position]
+            segs = []
+            quality = QualityCounts()
+            for label in agg.labels:
+                summary = per[label]
+                quality = pushdown.add_quality(quality, summary.quality)
+                vals = _transform(values[label][p.position], p.metric.transform)
+                segs.append(SegmentInput(label, summary.moments, vals))
+            size = sum(len(s.values) for s in segs) if plan.any else None
+            inputs.append(MetricInput(p.metric, tuple(segs), quality, sample_size=size))
+        log.debug("job %s: %s pushed down (%d rows, %d segments, %s)", self.job.job, period.ident,
+                  agg.total_rows, len(agg.labels), "sampled values" if plan.any else "all values")
+        return PeriodData(tuple(inputs), rows=agg.total_rows, null_segment_rows=agg.null_segment_rows,
+                          segments=agg.labels, compute="pushdown", sampled=plan.any)
+
+    def _shifts(self, conn: sa.Connection, rel: sa.FromClause, plans: Sequence[MetricPlan],
+                where: sa.ColumnElement[bool], traits: EngineTraits) -> dict[int, Shift]:
+        """One shift per metric: the probe, then the first usable value where the probe found none."""
+        row = conn.execute(pushdown.probe_query(rel, plans, where, traits)).mappings().one()
+        shifts: dict[int, Shift] = {}
+        for p in plans:
+            k = row[f"k{p.position}"]
+            spread = None if p.exact else row[f"r{p.position}"]
+            if k is None:
+                k = conn.execute(pushdown.first_value_query(rel, p, where, traits)).scalar()
+            shifts[p.position] = Shift.from_probe(p, k, spread)
+        return shifts
+
+    def _values(self, conn: sa.Connection, rel: sa.FromClause, plans: Sequence[MetricPlan],
+                where: sa.ColumnElement[bool], traits: EngineTraits, agg: Aggregate,
+                plan: SamplePlan) -> dict[str, dict[int, np.ndarray]]:
+        """The values per segment label and metric position (before the transform)."""
+        seg_key = self.cfg.segment_column
+        if not plan.any:
+            stmt = pushdown.values_query(rel, seg_key, plans, where, traits)
+            labels, _, cols = _fetch_columns(conn, stmt, traits, len(plans), hashed=False)
+            return _split(_positions(labels, agg.labels), cols, plans)
+        hashed = pushdown.hash_expr(self._sample_key(rel), plan.seed, traits)
+        stmt = pushdown.values_query(rel, seg_key, plans, where, traits, hashed=hashed,
+                                     thresholds=thresholds(plan, agg.rows, agg.raw))
+        labels, hashes, cols = _fetch_columns(conn, stmt, traits, len(plans), hashed=True)
+        groups = {lab: (hashes[m], [c[m] for c in cols])
+                  for lab, m in _positions(labels, agg.labels).items()}
+        del labels, hashes, cols  # the per-segment copies above are all that is kept
+        boost: dict[str, int] = {}
+        for _ in range(SAMPLE_RETRIES + 1):
+            short = [lab for lab in sorted(plan.sampled)
+                     if len(groups[lab][0]) < min(plan.cap, agg.rows[lab])]
+            if not short:
+                break
+            for lab in short:
+                boost[lab] = boost.get(lab, 0) + 1
+            log.debug("sample came up short for %s; reading again", ", ".join(short))
+            found = thresholds(plan, agg.rows, agg.raw, boost, only=short)
+            stmt = pushdown.values_query(rel, seg_key, plans, where, traits, hashed=hashed,
+                                         thresholds=found, only_listed=True)
+            labels2, hashes2, cols2 = _fetch_columns(conn, stmt, traits, len(plans), hashed=True)
+            again = _positions(labels2, short)
+            for lab in short:
+                m = again[lab]
+                groups[lab] = (hashes2[m], [c[m] for c in cols2])
+        out: dict[str, dict[int, np.ndarray]] = {}
+        for lab in agg.labels:
+            h, group_cols = groups.pop(lab)
+            keep = smallest(h, group_cols, plan.cap) if lab in plan.sampled else np.arange(len(h))
+            out[lab] = {p.position: _usable(c[keep]) for p, c in zip(plans, group_cols)}
+        return out
+
+    def _sample_key(self, rel: sa.FromClause) -> list[sa.ColumnElement]:
+        """The columns whose text is hashed to sample rows: the primary key, else time and segment."""
+        pk = list(getattr(rel, "primary_key", []) or [])
+        if pk:
+            return pk
+        return [rel.c[self.cfg.time_column], rel.c[self.cfg.segment_column]]
 
     def _connect(self):
         """A connection, with bounded retries and backoff when the server is unreachable."""
@@ -212,13 +368,110 @@ class Source:
         self.engine.dispose()
 
 
+def _fetch_columns(conn: sa.Connection, stmt: sa.Select, traits: EngineTraits, width: int, *,
+                   hashed: bool) -> tuple[np.ndarray, np.ndarray, list[np.ndarray]]:
+    """Run the values query and return its columns: segment labels, hashes (or an empty
+    array) and one float array per metric (NaN where the value is not usable).
+
+    Rows are streamed in chunks of :data:`FETCH_CHUNK` and turned into arrays chunk by
+    chunk, so memory holds arrays, not millions of Python objects. DuckDB's row-by-row
+    fetch is slow, so its result is taken as numpy arrays directly.
+    """
+    if traits.name == "duckdb":
+        result = conn.execute(stmt)
+        if hasattr(result.cursor, "fetchnumpy"):
+            data = result.cursor.fetchnumpy()
+            columns = [data[k] for k in result.keys()]
+            labels = np.array([str(v) for v in np.asarray(columns[0], dtype=object)], dtype=object)
+            hashes = np.asarray(columns[1]).astype("S32") if hashed else np.empty(0, dtype="S32")
+            return labels, hashes, [_floats(c) for c in columns[1 + hashed:]]
+        chunks = [result.all()]
+    else:
+        result = conn.execute(stmt.execution_options(yield_per=FETCH_CHUNK))
+        chunks = result.partitions()
+    codes: dict[str, int] = {}
+    parts: list[list[np.ndarray]] = []
+    for rows in chunks:
+        if not rows:
+            continue
+        cols = list(zip(*rows))
+        del rows
+        part = [np.fromiter((codes.setdefault(str(v), len(codes)) for v in cols[0]), dtype=np.int32,
+                            count=len(cols[0]))]
+        if hashed:
+            part.append(np.array(cols[1], dtype="S32"))
+        part += [np.array(c, dtype=float) for c in cols[1 + hashed:]]
+        parts.append(part)
+        del cols
+    if not parts:
+        return np.empty(0, dtype=object), np.empty(0, dtype="S32"), [np.empty(0) for _ in range(width)]
+    merged = []
+    for j in range(len(parts[0])):  # column by column, letting each chunk's piece go
+        merged.append(np.concatenate([part[j] for part in parts]))
+        for part in parts:
+            part[j] = None
+    names = np.empty(len(codes), dtype=object)
+    for name, code in codes.items():
+        names[code] = name
+    labels = names[merged[0]]
+    hashes = merged[1] if hashed else np.empty(0, dtype="S32")
+    return labels, hashes, merged[1 + hashed:]
+
+
+def _positions(labels: np.ndarray, wanted: Sequence[str]) -> dict[str, np.ndarray]:
+    """Row indices per segment label (every wanted label present, possibly empty)."""
+    out = {lab: np.empty(0, dtype=np.intp) for lab in wanted}
+    if len(labels) == 0:
+        return out
+    names, inverse = np.unique(labels.astype(str), return_inverse=True)
+    order = np.argsort(inverse, kind="stable")
+    bounds = np.cumsum(np.bincount(inverse, minlength=len(names)))[:-1]
+    for name, idx in zip(names, np.split(order, bounds)):
+        if name in out:
+            out[name] = idx
+    return out
+
+
+def _floats(col: np.ndarray) -> np.ndarray:
+    """Floats with NaN for NULL (drivers give None, Decimal, float or a masked array)."""
+    if isinstance(col, np.ma.MaskedArray):
+        return col.astype(float).filled(np.nan)
+    if col.dtype != object:
+        return col.astype(float)
+    return np.array([np.nan if v is None else float(v) for v in col], dtype=float)
+
+
+def _usable(col: np.ndarray) -> np.ndarray:
+    return col[~np.isnan(col)]
+
+
+def _split(picks: dict[str, np.ndarray], cols: list[np.ndarray], plans: Sequence[MetricPlan]
+           ) -> dict[str, dict[int, np.ndarray]]:
+    return {lab: {p.position: _usable(c[idx]) for p, c in zip(plans, cols)} for lab, idx in picks.items()}
+
+
+def _is_nan(v: Any) -> bool:
+    return isinstance(v, (float, np.floating, Decimal)) and v != v
+
+
+def _transform(values: np.ndarray, transform: str) -> np.ndarray:
+    """The analysis scale, as :func:`summarise_frame` computes it (numpy's log/log1p)."""
+    if transform == "log":
+        return np.log(values)
+    if transform == "log1p":
+        return np.log1p(values)
+    return values
+
+
 def summarise_frame(frame: pd.DataFrame, metrics: Sequence[MetricConfig], names: Sequence[str]) -> PeriodData:
     """Per-segment summaries and values for each metric, counting what is unusable.
 
     Values are converted to float here, in one place. Text that does not parse as a
-    number, non-finite values and (under ``log``/``log1p``) values outside the
-    transform's domain are counted and dropped; rows with a NULL segment are
-    counted and not grouped.
+    number, non-finite values (a stored NaN included) and (under ``log``/``log1p``)
+    values outside the transform's domain are counted and dropped; rows with a NULL
+    segment are counted and not grouped. Pass an ``object`` frame (as
+    :meth:`Source.fetch` does) so that a NULL (``None``) and a stored NaN stay apart;
+    in a float frame both read as NULL.
     """
     null_seg = int(frame["__segment"].isna().sum())
     frame = frame[frame["__segment"].notna()]
@@ -227,11 +480,17 @@ def summarise_frame(frame: pd.DataFrame, metrics: Sequence[MetricConfig], names:
     inputs = []
     for m, name in zip(metrics, names):
         raw = frame[name]
-        is_null = raw.isna()
+        if raw.dtype == object:
+            is_null = raw.map(lambda v: v is None or v is pd.NA).to_numpy(dtype=bool)
+            is_nan = raw.map(_is_nan).to_numpy(dtype=bool)
+        else:
+            is_null = raw.isna().to_numpy(dtype=bool)
+            is_nan = np.zeros(len(raw), dtype=bool)
         num = pd.to_numeric(raw, errors="coerce").astype(float)
-        non_numeric = num.isna() & ~is_null
+        unparsed = num.isna().to_numpy()
+        non_numeric = unparsed & ~is_null & ~is_nan
         arr = num.to_numpy(dtype=float)
-        non_finite = ~np.isfinite(arr) & ~num.isna().to_numpy()
+        non_finite = (~np.isfinite(arr) & ~unparsed) | is_nan
         ok = np.isfinite(arr)
         out_of_domain = np.zeros(len(arr), dtype=bool)
         if m.transform == "log":
@@ -259,16 +518,3 @@ def summarise_frame(frame: pd.DataFrame, metrics: Sequence[MetricConfig], names:
         inputs.append(MetricInput(m, tuple(segs), quality))
     return PeriodData(tuple(inputs), rows=len(frame) + null_seg, null_segment_rows=null_seg,
                       segments=segment_names)
-
-
-def _server_version(conn: sa.Connection) -> str:
-    info = conn.dialect.server_version_info
-    if info:
-        return ".".join(str(x) for x in info)
-    if conn.dialect.name == "sqlite":
-        import sqlite3
-
-        return sqlite3.sqlite_version
-    return "unknown"
-
-
