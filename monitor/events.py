@@ -21,17 +21,59 @@ no database, no I/O. The kinds are those of the contract:
 With no earlier period stored, the comparison is against an empty baseline: every
 significant metric and flagged segment is ``emerged``, every failing check is
 ``assumption_broken``, and no ``segment_new`` is raised (every segment would be new).
+
+Persistence: ``confirm: K``
+---------------------------
+``emerged`` and ``cleared`` announce changes of an *announced state*: per metric,
+"differs" or not; per segment of a metric, flagged ``high``, ``low`` or not.
+
+* **K = 1** (the default): the announced state is the previous stored period's
+  verdict (:meth:`Baseline.from_stored`), so ``emerged`` means "significant now, not
+  in the previous period" and ``cleared`` the reverse.
+* **K >= 2**: the announced state changes only after K consecutive periods agree
+  on the new verdict, the current one included. ``emerged`` is raised in the K-th
+  consecutive significant period when the metric was announced as not differing;
+  ``cleared`` in the K-th consecutive non-significant period when it was announced as
+  differing. Segment flags follow the same rule, with the flag (``high``, ``low`` or
+  none) as the verdict; a flag that turns from ``high`` to ``low`` in K periods gives
+  ``emerged`` (low) and ``cleared`` (high) together. A verdict that alternates
+  without K equal periods in a row changes nothing.
+
+What a period's verdict is: for a metric, "significant and at least ``min_effect``";
+for a segment, its flag when the metric was significant and at least ``min_effect``,
+else none. A period in which a metric could not be computed (no p-value) gives no
+verdict for it and its segments, and a period without records of a segment gives no
+verdict for that segment: such periods neither count towards a run nor break one.
+
+The announced state is *derived*, not stored: :meth:`Baseline.from_history` replays
+the rule over the stored verdicts (:class:`~monitor.history.StoredPeriod` entries,
+newest first, as ``History.recent`` returns them), starting from "not announced" at
+the oldest period it is given. The replay is exact when the periods given reach back
+to the job's first period or to a run of K equal verdicts before the current period
+(after such a run the state is known whatever came before). Only when a verdict
+alternated without K equal periods in a row through the whole window does the
+replay start "not announced" where the truth may differ; the error is then at worst
+one repeated ``emerged`` or one missing ``cleared``, and only in a period that
+completes a run of K. :func:`lookback` gives the window: 26 * K periods (one for
+K = 1). Because the state is a function of the stored verdicts alone, re-running
+a period gives the same events, and changing K re-reads history under the new K.
 """
 
 from __future__ import annotations
 
 import hashlib
+import logging
 import math
 from dataclasses import dataclass, field
-from typing import Any, Mapping, Sequence
+from typing import Any, Mapping, Protocol, Sequence
 
 from .analysis import MetricResult
 from .config import JobConfig
+
+log = logging.getLogger(__name__)
+
+#: Stored periods replayed per unit of ``confirm`` (see :func:`lookback`).
+LOOKBACK_PER_CONFIRM = 26
 
 KINDS = (
     "emerged",
@@ -78,34 +120,138 @@ class Event:
         }
 
 
+class StoredLike(Protocol):
+    """What :meth:`Baseline.from_history` reads of a stored period
+    (:class:`monitor.history.StoredPeriod` has these fields)."""
+
+    period: str
+    segments: Sequence[str]
+    metrics: Mapping[str, Mapping[str, Any]]
+
+
+@dataclass(frozen=True)
+class Run:
+    """The latest run of equal verdicts in the stored periods, for ``confirm: K``.
+
+    ``verdict`` is True/False for a metric, ``'high'``, ``'low'`` or None for a
+    segment's flag; ``length`` counts the periods with a verdict in the run and
+    ``since`` names its first period.
+    """
+
+    verdict: bool | str | None
+    length: int
+    since: str
+
+
 @dataclass(frozen=True)
 class Baseline:
-    """What the previous stored period said, reduced to what events compare."""
+    """What the stored history says, reduced to what events compare.
+
+    ``significant`` and ``flags`` are the announced state (see the module notes);
+    ``period``, ``segments`` and ``checks`` are those of the latest stored period.
+    ``metric_runs`` and ``flag_runs`` hold the latest run of equal verdicts per
+    metric and per (metric, segment); they are filled for ``confirm`` >= 2 only.
+    """
 
     period: str | None
     segments: frozenset[str]
-    significant: Mapping[str, bool]  # metric -> significant and announced
-    flags: Mapping[str, Mapping[str, str]]  # metric -> segment -> high/low
+    significant: Mapping[str, bool]  # metric -> announced as differing
+    flags: Mapping[str, Mapping[str, str]]  # metric -> segment -> announced high/low
     checks: Mapping[str, Mapping[str, bool | None]]  # metric -> check -> passed
+    confirm: int = 1
+    metric_runs: Mapping[str, Run] = field(default_factory=dict)
+    flag_runs: Mapping[str, Mapping[str, Run]] = field(default_factory=dict)
 
     @classmethod
-    def empty(cls) -> "Baseline":
-        return cls(None, frozenset(), {}, {}, {})
+    def empty(cls, confirm: int = 1) -> "Baseline":
+        return cls(None, frozenset(), {}, {}, {}, confirm=confirm)
 
     @classmethod
     def from_stored(cls, period: str, segments: Sequence[str], metrics: Mapping[str, Mapping[str, Any]],
                     job: JobConfig) -> "Baseline":
+        """The baseline of ``confirm: 1``: the verdicts of one stored period."""
         min_effect = {m.name: m.min_effect for m in job.metrics}
         sig = {}
         flg = {}
         chk = {}
         for name, entry in metrics.items():
-            eff = (entry.get("effect_size") or {}).get("value")
-            sig[name] = bool(entry.get("significant")) and _important(eff, min_effect.get(name))
-            flg[name] = {s["segment"]: s["flag"] for s in entry.get("segments", []) if s.get("flag")}
+            important = _important(_effect(entry), min_effect.get(name))
+            sig[name] = bool(entry.get("significant")) and important
+            # flags of a metric below its min_effect were never announced (derive_events drops them)
+            flg[name] = {s["segment"]: s["flag"] for s in entry.get("segments", []) if s.get("flag")} \
+                if important else {}
             chk[name] = {k: v.get("passed") for k, v in (entry.get("assumptions") or {}).items()
                          if v.get("watched", True)}
         return cls(period, frozenset(segments), sig, flg, chk)
+
+    @classmethod
+    def from_history(cls, stored: Sequence[StoredLike], job: JobConfig) -> "Baseline":
+        """The baseline for ``job.confirm``, from stored periods, newest first.
+
+        With ``confirm: 1`` only the newest period is read (exactly
+        :meth:`from_stored`). With ``confirm: K >= 2`` the announced state is
+        replayed over all the periods given, oldest first (see the module notes);
+        pass at least :func:`lookback` ``(K)`` of them when history has that many.
+        """
+        k = job.confirm
+        if not stored:
+            return cls.empty(k)
+        newest = stored[0]
+        base = cls.from_stored(newest.period, newest.segments, newest.metrics, job)
+        if k == 1:
+            return base
+        min_effect = {m.name: m.min_effect for m in job.metrics}
+        announced: dict[str, bool] = {}
+        metric_runs: dict[str, Run] = {}
+        announced_flags: dict[str, dict[str, str | None]] = {}
+        flag_runs: dict[str, dict[str, Run]] = {}
+        for sp in reversed(stored):  # oldest first
+            seen = set(sp.segments)
+            for name, entry in sp.metrics.items():
+                if entry.get("p_value") is None:  # not computed: no verdict for it or its segments
+                    continue
+                important = _important(_effect(entry), min_effect.get(name))
+                verdict = bool(entry.get("significant")) and important
+                run = _extend(metric_runs.get(name), verdict, sp.period)
+                metric_runs[name] = run
+                if run.length >= k:
+                    announced[name] = verdict
+                flags_now = {s["segment"]: s["flag"] for s in entry.get("segments", [])
+                             if important and s.get("flag")}
+                runs = flag_runs.setdefault(name, {})
+                states = announced_flags.setdefault(name, {})
+                # a segment never flagged so far has nothing to announce or clear: its runs start
+                # with its first flag (derive_events starts a run of one for a segment it has no run of)
+                for seg in set(flags_now) | set(runs):
+                    if seg not in seen:  # no records of the segment in that period: no verdict
+                        continue
+                    run = _extend(runs.get(seg), flags_now.get(seg), sp.period)
+                    runs[seg] = run
+                    if run.length >= k:
+                        states[seg] = run.verdict
+        flags = {name: {seg: f for seg, f in states.items() if f} for name, states in announced_flags.items()}
+        return cls(base.period, base.segments, announced, flags, base.checks, confirm=k,
+                   metric_runs=metric_runs, flag_runs=flag_runs)
+
+
+def lookback(confirm: int) -> int:
+    """How many stored periods :meth:`Baseline.from_history` should be given.
+
+    One for ``confirm: 1``; ``26 * K`` otherwise (half a year of weekly periods per
+    unit of K), enough for the replay to be exact unless a verdict alternated
+    without K equal periods in a row through the whole window (see the module notes).
+    """
+    return 1 if confirm <= 1 else LOOKBACK_PER_CONFIRM * confirm
+
+
+def _extend(run: Run | None, verdict: bool | str | None, period: str) -> Run:
+    if run is not None and run.verdict == verdict:
+        return Run(verdict, run.length + 1, run.since)
+    return Run(verdict, 1, period)
+
+
+def _effect(entry: Mapping[str, Any]) -> float | None:
+    return (entry.get("effect_size") or {}).get("value")
 
 
 def _important(effect: float | None, min_effect: float | None) -> bool:
@@ -146,6 +292,11 @@ def derive_events(
     seg_word = job.source.segment_column
     cfg = {m.name: m for m in job.metrics}
     prev_label = f"in {baseline.period}" if baseline.period else "before"
+    k = job.confirm
+    if k > 1 and baseline.confirm != k:
+        log.warning("job %s has confirm: %s but the baseline was built for confirm: %s; "
+                    "build it with Baseline.from_history(history.recent(period, lookback(%s)), job)",
+                    job.job, k, baseline.confirm, k)
 
     # segments appearing / disappearing (table level, metric None)
     now_set = set(segments_now)
@@ -193,56 +344,42 @@ def derive_events(
                 f"so no gaps to it were computed.",
                 {"problem": "reference_missing", "reference": m.reference}, subject="reference_missing"))
 
-        # metric-level significance
+        # metric-level significance, then segment flags
         was = baseline.significant.get(r.metric, False)
         eff = r.effect_size.value if r.effect_size else math.nan
         important = _important(eff, m.min_effect if m else None)
         now_sig = r.significant and important
-        eff_text = f", {r.effect_size.name.replace('_', ' ')} {_fmt(eff)}" if r.effect_size else ""
-        if now_sig and not was:
-            out.append(Event(
-                "emerged", r.metric, None,
-                f"{r.metric} now differs between {seg_word}s ({r.method}, q = {_p(r.q_value)}{eff_text}); "
-                f"it did not {prev_label}.",
-                {"method": r.method, "p_value": r.p_value, "q_value": r.q_value, "effect": eff}))
-        elif was and not now_sig and r.computed:
-            why = "" if r.significant else f" (q = {_p(r.q_value)})"
-            if r.significant and not important:
-                why = f" at the practical threshold ({r.effect_size.name.replace('_', ' ')} {_fmt(eff)} < {m.min_effect})"
-            out.append(Event(
-                "cleared", r.metric, None,
-                f"{r.metric} no longer differs between {seg_word}s{why}.",
-                {"method": r.method, "p_value": r.p_value, "q_value": r.q_value, "effect": eff}))
-
-        # segment-level flags
         prev_flags = baseline.flags.get(r.metric, {})
         now_flags = r.flagged if important else {}
-        means = {s.segment: s for s in r.segments}
-        for seg, flag in sorted(now_flags.items()):
-            if prev_flags.get(seg) != flag:
-                row = means[seg]
-                word = "above" if flag == "high" else "below"
-                if r.reference is not None:
-                    where = f"{word} the reference {seg_word} {r.reference}"
-                    count = ""
-                else:
-                    where = f"{word} the other {seg_word}s"
-                    n = row.above if flag == "high" else row.below
-                    count = f", significantly {word} {n} of {len(r.segments) - 1 - _excluded(r)} others"
-                out.append(Event(
-                    "emerged", r.metric, seg,
-                    f"{seg_word} {seg} now stands {where} on {r.metric} "
-                    f"(mean {_value(row.mean, unit, decimals)}, {_signed(row.diff_vs_rest, unit, decimals)} "
-                    f"against the rest{count}).",
-                    {"flag": flag, "mean": row.mean, "diff_vs_rest": row.diff_vs_rest, "above": row.above,
-                     "below": row.below, "reference": r.reference}))
-        for seg, flag in sorted(prev_flags.items()):
-            if now_flags.get(seg) != flag and seg in now_set and r.computed:
-                word = "above" if flag == "high" else "below"
-                out.append(Event(
-                    "cleared", r.metric, seg,
-                    f"{seg_word} {seg} no longer stands {word} the other {seg_word}s on {r.metric}.",
-                    {"previous_flag": flag}))
+        if k == 1:
+            if now_sig and not was:
+                out.append(_metric_emerged(r, seg_word, eff, None, prev_label))
+            elif was and not now_sig and r.computed:
+                out.append(_metric_cleared(r, m, seg_word, eff, important, None))
+            for seg, flag in sorted(now_flags.items()):
+                if prev_flags.get(seg) != flag:
+                    out.append(_segment_emerged(r, seg, flag, seg_word, unit, decimals, None))
+            for seg, flag in sorted(prev_flags.items()):
+                if now_flags.get(seg) != flag and seg in now_set and r.computed:
+                    out.append(_segment_cleared(r, seg, flag, seg_word, None))
+        elif r.computed:  # confirm: K >= 2 (an uncomputed metric gives no verdict)
+            run = _extend(baseline.metric_runs.get(r.metric), now_sig, "")
+            if run.length >= k and now_sig != was:
+                out.append(_metric_emerged(r, seg_word, eff, run, prev_label) if now_sig
+                           else _metric_cleared(r, m, seg_word, eff, important, run))
+            runs = baseline.flag_runs.get(r.metric, {})
+            ups, downs = [], []
+            for seg in sorted({s.segment for s in r.segments} | set(prev_flags) | set(runs)):
+                if seg not in now_set:  # no records of the segment: no verdict
+                    continue
+                flag, before = now_flags.get(seg), prev_flags.get(seg)
+                run = _extend(runs.get(seg), flag, "")
+                if run.length >= k and flag != before:
+                    if flag:
+                        ups.append(_segment_emerged(r, seg, flag, seg_word, unit, decimals, run))
+                    if before:
+                        downs.append(_segment_cleared(r, seg, before, seg_word, run))
+            out.extend(ups + downs)
 
         # assumptions
         prev_checks = baseline.checks.get(r.metric, {})
@@ -264,6 +401,65 @@ def derive_events(
                     {"check": name, "value": chk.value, "threshold": chk.threshold, "method": r.method},
                     subject=name))
     return out
+
+
+def _confirmed(run: Run | None) -> tuple[str, dict[str, Any]]:
+    """The message tail and detail fields of an event raised under ``confirm: K >= 2``."""
+    if run is None:
+        return "", {}
+    return (f"; confirmed over the last {run.length} periods, since {run.since}",
+            {"confirmed_periods": run.length, "since": run.since})
+
+
+def _metric_emerged(r: MetricResult, seg_word: str, eff: float, run: Run | None, prev_label: str) -> Event:
+    eff_text = f", {r.effect_size.name.replace('_', ' ')} {_fmt(eff)}" if r.effect_size else ""
+    tail, extra = _confirmed(run) if run is not None else (f"; it did not {prev_label}", {})
+    return Event(
+        "emerged", r.metric, None,
+        f"{r.metric} now differs between {seg_word}s ({r.method}, q = {_p(r.q_value)}{eff_text}){tail}.",
+        {"method": r.method, "p_value": r.p_value, "q_value": r.q_value, "effect": eff, **extra})
+
+
+def _metric_cleared(r: MetricResult, m: Any, seg_word: str, eff: float, important: bool,
+                    run: Run | None) -> Event:
+    tail, extra = _confirmed(run)
+    why = "" if r.significant else f" (q = {_p(r.q_value)})"
+    if r.significant and not important:
+        why = f" at the practical threshold ({r.effect_size.name.replace('_', ' ')} {_fmt(eff)} < {m.min_effect})"
+    return Event(
+        "cleared", r.metric, None,
+        f"{r.metric} no longer differs between {seg_word}s{why}{tail}.",
+        {"method": r.method, "p_value": r.p_value, "q_value": r.q_value, "effect": eff, **extra})
+
+
+def _segment_emerged(r: MetricResult, seg: str, flag: str, seg_word: str, unit: str | None,
+                     decimals: int | None, run: Run | None) -> Event:
+    tail, extra = _confirmed(run)
+    row = next(s for s in r.segments if s.segment == seg)
+    word = "above" if flag == "high" else "below"
+    if r.reference is not None:
+        where = f"{word} the reference {seg_word} {r.reference}"
+        count = ""
+    else:
+        where = f"{word} the other {seg_word}s"
+        n = row.above if flag == "high" else row.below
+        count = f", significantly {word} {n} of {len(r.segments) - 1 - _excluded(r)} others"
+    return Event(
+        "emerged", r.metric, seg,
+        f"{seg_word} {seg} now stands {where} on {r.metric} "
+        f"(mean {_value(row.mean, unit, decimals)}, {_signed(row.diff_vs_rest, unit, decimals)} "
+        f"against the rest{count}){tail}.",
+        {"flag": flag, "mean": row.mean, "diff_vs_rest": row.diff_vs_rest, "above": row.above,
+         "below": row.below, "reference": r.reference, **extra})
+
+
+def _segment_cleared(r: MetricResult, seg: str, flag: str, seg_word: str, run: Run | None) -> Event:
+    tail, extra = _confirmed(run)
+    word = "above" if flag == "high" else "below"
+    return Event(
+        "cleared", r.metric, seg,
+        f"{seg_word} {seg} no longer stands {word} the other {seg_word}s on {r.metric}{tail}.",
+        {"previous_flag": flag, **extra})
 
 
 def _excluded(r: MetricResult) -> int:

@@ -33,7 +33,7 @@ from .analysis import MetricResult, analyse_period
 from .clock import Clock, SystemClock
 from .config import JobConfig, config_hash
 from .errors import SegwatchError
-from .events import Baseline, Event, derive_events
+from .events import Baseline, Event, derive_events, lookback
 from .history import History, LeaseLost, iso_utc
 from .ledger import LEASE_SECONDS, Claim, Ledger, LedgerEntry, PeriodBusy
 from .periods import Period, latest_complete, parse_period, period_range
@@ -180,11 +180,7 @@ class Job:
             log.info("job %s: %s skipped: %s", cfg.job, period.ident, note)
             return PeriodReport(cfg.job, period, (), (), 0, 0, 0, (), outcome, note)
         results = analyse_period(data.metrics, cfg)
-        stored = self.history.previous(period)
-        baseline = (
-            Baseline.from_stored(stored.period, stored.segments, stored.metrics, cfg)
-            if stored else Baseline.empty()
-        )
+        baseline = Baseline.from_history(self.history.recent(period, lookback(cfg.confirm)), cfg)
         events = derive_events(cfg, results, data.segments, data.null_segment_rows, data.rows, baseline)
         fresh = self.history.store_period(
             period, results, events, [s.channel for s in self.sinks],

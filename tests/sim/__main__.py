@@ -1,0 +1,5 @@
+"""``python -m tests.sim``: see :mod:`tests.sim.run`."""
+
+from tests.sim.run import main
+
+raise SystemExit(main())
