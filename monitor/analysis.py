@@ -386,7 +386,7 @@ def analyse_metric(data: MetricInput, job: JobConfig, n_metrics: int = 1) -> Met
                         for c in contrasts}
         else:
             verdicts = _segment_verdicts(labels, pairs, reference, job.alpha)
-        rest = {c.segment: c.diff for c in contrasts}
+        rest = _mean_minus_rest(labels, groups)  # in the metric's units, whatever the method
         rows = [
             replace(r, diff_vs_rest=rest.get(r.segment, math.nan),
                     above=verdicts[r.segment][0], below=verdicts[r.segment][1],
@@ -426,6 +426,16 @@ def sensitivity(groups: Sequence[Moments], job: JobConfig, n_metrics: int,
     threshold = math.sqrt(min_effect / (1 - min_effect)) if min_effect else DEFAULT_THRESHOLD_F
     return Sensitivity(job.power, alpha, min_f, min_diff, threshold,
                        bool(math.isfinite(min_f) and min_f > threshold))
+
+
+def _mean_minus_rest(labels: Sequence[str], groups: Sequence[Moments]) -> dict[str, float]:
+    """Each segment's mean minus the mean of the other segments' records (descriptive)."""
+    n = np.array([g.n for g in groups], dtype=float)
+    mean = np.array([_f(g.mean) for g in groups])
+    total, weighted = n.sum(), n * mean
+    with np.errstate(all="ignore"):
+        rest = (weighted.sum() - weighted) / (total - n)
+    return {s: float(mean[i] - rest[i]) for i, s in enumerate(labels)}
 
 
 def _segment_verdicts(labels: Sequence[str], pairs: Sequence[PairRow], reference: str | None,
