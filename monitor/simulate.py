@@ -477,8 +477,8 @@ class StreamTally:
     def add(self, other: "StreamTally") -> None:
         for name in ("periods", "metric_periods_null", "null_significant", "metric_periods_true",
                      "true_significant", "false_metric_emerged", "false_segment_emerged",
-                     "false_segment_on_true", "true_segment_emerged", "periods_with_false_emerged", "periods_with_false_discovery",
-                     "fdp_sum"):
+                     "false_segment_on_true", "true_segment_emerged", "periods_with_false_emerged",
+                     "periods_with_false_discovery", "fdp_sum"):
             setattr(self, name, getattr(self, name) + getattr(other, name))
         self.delays.extend(other.delays)
         self.segment_delays.extend(other.segment_delays)

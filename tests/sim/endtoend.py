@@ -68,7 +68,8 @@ def write_project(folder: Path, values: list[list[list[np.ndarray]]], confirm: i
         for j, label in enumerate(DESIGN.labels):
             for r in range(DESIGN.sizes[j]):
                 ts = monday + timedelta(seconds=int(rng.integers(0, 7 * 24 * 3600)))
-                rows.append((ts.strftime("%Y-%m-%d %H:%M:%S"), label, *(float(week[i][j][r]) for i in range(len(TESTS)))))
+                values = (float(week[i][j][r]) for i in range(len(TESTS)))
+                rows.append((ts.strftime("%Y-%m-%d %H:%M:%S"), label, *values))
     marks = ", ".join("?" for _ in range(len(TESTS) + 2))
     names = ", ".join(f"m{i + 1:02d}" for i in range(len(TESTS)))
     con.executemany(f"INSERT INTO records (ts, segment, {names}) VALUES ({marks})", rows)
