@@ -202,10 +202,6 @@ def test_welch_keeps_its_level_where_fisher_inflates(unequal_case):
     assert 0.03 + 3 * se(welch, n) <= welch <= 0.07 - 3 * se(welch, n)
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "the auto rule picks Fisher's ANOVA whenever the Brown-Forsythe pre-test and the sd-ratio check "
-    "miss the unequal spreads (about a third of the draws here), so its Type I error is near 0.08; "
-    "see docs/error_rates.md, 'auto and the pre-test'. Remove this mark when choose_method prefers Welch."))
 def test_auto_is_no_worse_than_welch_where_fisher_inflates(unequal_case):
     diff = unequal_case["auto"].astype(float) - unequal_case["welch"].astype(float)  # paired on the same draws
     assert diff.mean() <= 3 * diff.std(ddof=1) / math.sqrt(len(diff))

@@ -256,7 +256,7 @@ class TestChooseMethod:
         choice = choose_method(groups, None, _checks(bf_p=0.41, sd=1.3))
         assert choice == MethodChoice(
             "anova",
-            "Fisher's ANOVA: no strong non-normality in small segments and no sign of unequal spreads "
+            "Fisher's ANOVA: no strong non-normality in small segments, about equal sizes and no sign of unequal spreads "
             "(Brown-Forsythe p 0.41 >= 0.05, largest/smallest sd ratio 1.3 <= 2.0).",
         )
 

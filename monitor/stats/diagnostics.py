@@ -87,6 +87,7 @@ CHECK_NAMES = ("brown_forsythe", "normality", "sd_ratio", "n_ratio", "outlier_sh
 SMALL_SEGMENT_N = 30
 
 #: |skewness| above this in a small segment is "strong" (common practice).
+FISHER_SIZE_RATIO = 1.5  # Fisher's ANOVA only when the largest/smallest segment size is at most this
 SKEWNESS_LIMIT = 2.0
 
 
@@ -586,10 +587,20 @@ def choose_method(
     spread_text = f"{_bf_text(bf)}, {_sd_text(sdr)}"
     if (bf is not None and bf.passed is False) or (sdr is not None and sdr.passed is False):
         return MethodChoice("welch", f"Welch's ANOVA: spreads look unequal ({spread_text}).")
+    if sizes and max(sizes) / min(sizes) > FISHER_SIZE_RATIO:
+        # Fisher's ANOVA is robust to unequal spreads only with about equal sizes (common
+        # practice; Glass, Peckham & Sanders 1972); a pre-test that misses a moderate spread
+        # difference would otherwise inflate its Type I error (measured in docs/error_rates.md).
+        return MethodChoice(
+            "welch",
+            f"Welch's ANOVA: segment sizes differ (largest/smallest {max(sizes) / min(sizes):.2f} > "
+            f"{_num(FISHER_SIZE_RATIO)}), where Fisher's ANOVA is not robust to spreads the checks may miss "
+            f"({spread_text}).",
+        )
     return MethodChoice(
         "anova",
-        "Fisher's ANOVA: no strong non-normality in small segments and no sign of unequal "
-        f"spreads ({spread_text}).",
+        "Fisher's ANOVA: no strong non-normality in small segments, about equal sizes and no sign of "
+        f"unequal spreads ({spread_text}).",
     )
 
 
