@@ -438,6 +438,13 @@ def _segment_emerged(r: MetricResult, seg: str, flag: str, seg_word: str, unit: 
     row = next(s for s in r.segments if s.segment == seg)
     word = "above" if flag == "high" else "below"
     if r.reference is not None:
+        gap = _gap_text(r, seg, unit, decimals)
+        if gap is not None:
+            return Event(
+                "emerged", r.metric, seg,
+                f"{seg_word} {seg}: the gap to the reference {seg_word} {r.reference} on {r.metric} is now "
+                f"{gap}{tail}.",
+                {"flag": flag, "mean": row.mean, "reference": r.reference, **extra})
         where = f"{word} the reference {seg_word} {r.reference}"
         count = ""
     else:
@@ -456,10 +463,44 @@ def _segment_emerged(r: MetricResult, seg: str, flag: str, seg_word: str, unit: 
 def _segment_cleared(r: MetricResult, seg: str, flag: str, seg_word: str, run: Run | None) -> Event:
     tail, extra = _confirmed(run)
     word = "above" if flag == "high" else "below"
+    if r.reference is not None:
+        gap = _gap_text(r, seg, None, None, with_test=False)
+        now = f" (now {gap})" if gap else ""
+        return Event(
+            "cleared", r.metric, seg,
+            f"{seg_word} {seg}: the gap to the reference {seg_word} {r.reference} on {r.metric} is no longer "
+            f"significant{now}{tail}.",
+            {"previous_flag": flag, "reference": r.reference, **extra})
     return Event(
         "cleared", r.metric, seg,
         f"{seg_word} {seg} no longer stands {word} the other {seg_word}s on {r.metric}{tail}.",
         {"previous_flag": flag, **extra})
+
+
+def _gap_text(r: MetricResult, seg: str, unit: str | None, decimals: int | None,
+              with_test: bool = True) -> str | None:
+    """The gap of ``seg`` to the reference with its simultaneous interval, as people read it:
+    a percentage of the reference's geometric mean under ``log``, else in the metric's unit."""
+    pair = next((p for p in r.pairs if p.a == seg and p.b == r.reference), None)
+    if pair is None or not math.isfinite(pair.diff):
+        return None
+    rows = {s.segment: s for s in r.segments}
+    test = f"; {r.posthoc}, adjusted p = {_p(pair.p_adj)}" if with_test and r.posthoc else ""
+    if pair.log_scale:
+        pct = [100 * (math.exp(x) - 1) if math.isfinite(x) else math.nan
+               for x in (pair.diff, pair.ci_low, pair.ci_high)]
+        if not with_test:
+            return f"{pct[0]:+.1f}% [{pct[1]:+.1f}%, {pct[2]:+.1f}%]"
+        gm = [math.exp(rows[x].mean) if x in rows and math.isfinite(rows[x].mean) else math.nan
+              for x in (seg, r.reference)]
+        return (f"{pct[0]:+.1f}% [{pct[1]:+.1f}%, {pct[2]:+.1f}%] (geometric means {_value(gm[0], unit, decimals)} "
+                f"vs {_value(gm[1], unit, decimals)}{test})")
+    if r.method == "kruskal":
+        return None  # a mean-rank difference has no unit to speak in
+    ref_mean = rows[r.reference].mean if r.reference in rows else math.nan
+    share = f", {100 * pair.diff / ref_mean:+.1f}% of {r.reference}'s mean" if ref_mean else ""
+    return (f"{_signed(pair.diff, unit, decimals)} [{_signed(pair.ci_low, None, decimals)}, "
+            f"{_signed(pair.ci_high, None, decimals)}] ({'mean difference' + share}{test})")
 
 
 def _excluded(r: MetricResult) -> int:

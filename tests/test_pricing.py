@@ -685,10 +685,6 @@ def test_docs_composition_check(db, tmp_path):
 # ---------------------------------------------------------------------------
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "monitor/events.py: under transform: log the emerged message prints the mean of the logged values with "
-    "the metric's unit ('mean 10 EUR, -0 EUR against the rest'); print the geometric mean exp(mean) and the "
-    "gap to the reference as a percentage instead"))
 def test_log_scale_message_shows_money_amounts(backfill):
     (event,) = _events(backfill["2025-01"], "emerged", "household_income", "Premium")
     amounts = [float(x.replace(",", "")) for x in re.findall(r"([-+]?[\d,]+(?:\.\d+)?) EUR", event["message"])]
@@ -696,10 +692,6 @@ def test_log_scale_message_shows_money_amounts(backfill):
     assert amounts and all(abs(x) >= 1000 for x in amounts), event["message"]
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "monitor/events.py: with a reference, emerged should speak of the gap of the segment to the reference "
-    "with its interval, e.g. 'gap of tier Saver to the reference Basic on household_income: -25.0% "
-    "[-34.6%, -14.0%] (Dunnett, p_adj ...)' under log, or in the unit without a transform"))
 def test_reference_gap_message_gives_percentage(backfill):
     period = next(p for p, d in backfill.items() if _events(d, "emerged", "household_income", "Saver"))
     (event,) = _events(backfill[period], "emerged", "household_income", "Saver")
@@ -710,9 +702,6 @@ def test_reference_gap_message_gives_percentage(backfill):
     assert f"{mid:+.1f}% [{lo:+.1f}%, {hi:+.1f}%]" in message, message
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "monitor/events.py: with a reference, cleared says 'no longer stands below the other tiers'; it should "
-    "say the gap to the reference (tier Basic) is no longer significant"))
 def test_reference_gap_cleared_message(tmp_path, capsys):
     rng = np.random.default_rng(5)
     db = tmp_path / "two.sqlite"
