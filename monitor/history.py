@@ -34,6 +34,7 @@ On SQLite the file runs in WAL mode and write transactions start with
 from __future__ import annotations
 
 import json
+import threading
 import logging
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -60,6 +61,7 @@ class LeaseLost(HistoryError):
     """The run's lease was taken over by another process before it could store its results."""
 
 metadata = sa.MetaData()
+_SCHEMA_LOCK = threading.RLock()
 
 runs = sa.Table(
     "sw_runs", metadata,
@@ -326,8 +328,11 @@ class History:
         if self._ready:
             return
         try:
-            metadata.create_all(self.engine)
-            self._add_missing_columns()
+            with _SCHEMA_LOCK:  # threads of one process (serve's tick and sweep) create tables one at a time
+                if self._ready:
+                    return
+                metadata.create_all(self.engine)
+                self._add_missing_columns()
         except SQLAlchemyError as exc:
             raise HistoryError(f"cannot create the history tables at {redact(self.url)}: {one_line(exc)}") from exc
         self._ready = True
@@ -671,9 +676,9 @@ def _make_engine(url: str) -> Engine:
         def _on_connect(dbapi_conn, _record):  # pragma: no cover - exercised by every test
             dbapi_conn.isolation_level = None  # let us issue BEGIN ourselves
             cur = dbapi_conn.cursor()
-            if db and db != ":memory:":
-                cur.execute("PRAGMA journal_mode=WAL")
-            cur.execute("PRAGMA busy_timeout=30000")
+            cur.execute("PRAGMA busy_timeout=30000")  # before anything that may wait for a lock
+            if db and db != ":memory:" and cur.execute("PRAGMA journal_mode").fetchone()[0].lower() != "wal":
+                cur.execute("PRAGMA journal_mode=WAL")  # once per file; WAL persists in the file
             cur.close()
 
         @sa.event.listens_for(engine, "begin")
