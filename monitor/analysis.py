@@ -378,10 +378,10 @@ def analyse_metric(data: MetricInput, job: JobConfig, n_metrics: int = 1) -> Met
             pairs = tuple(
                 PairRow(p.a, p.b, p.diff, p.p_adj, p.ci_low, p.ci_high, log_scale=log_scale) for p in ph.pairs
             )
-        contrasts = flags.segment_vs_rest(
-            labels, groups, samples if method == "kruskal" else None, method=method, alpha=job.alpha
-        )
-        if ph_name is None:
+        if ph_name is None:  # too many segments for pairs: flag by each segment's contrast with the rest
+            contrasts = flags.segment_vs_rest(
+                labels, groups, samples if method == "kruskal" else None, method=method, alpha=job.alpha
+            )
             verdicts = {c.segment: (int(c.direction == "high"), int(c.direction == "low"), c.direction)
                         for c in contrasts}
         else:
