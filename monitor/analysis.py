@@ -55,17 +55,24 @@ QUANTILE_LEVELS = (0.05, 0.25, 0.50, 0.75, 0.95)
 QUANTILE_KEYS = ("q05", "q25", "q50", "q75", "q95")
 
 
-def segment_quantiles(values: np.ndarray | None) -> tuple[float, ...]:
+_LEVELS = np.array(QUANTILE_LEVELS)
+
+
+def segment_quantiles(values: np.ndarray | None, *, presorted: np.ndarray | None = None) -> tuple[float, ...]:
     """The :data:`QUANTILE_LEVELS` of one segment's values, or ``()`` when there are none.
 
     Linear interpolation between order statistics (Hyndman & Fan 1996, definition 7;
     numpy's default). The values are on the analysed scale (after ``transform``), all
     of them when read locally, or the bounded random sample when sums are pushed down,
-    in which case the quantiles are estimates.
+    in which case the quantiles are estimates. ``presorted`` is ``numpy.sort`` of the
+    values when the caller has it (the result is the same, bit for bit; see
+    :func:`monitor.stats.diagnostics.quantiles_of_sorted`).
     """
     if values is None or len(values) == 0:
         return ()
-    return tuple(float(x) for x in np.quantile(np.asarray(values, dtype=float), QUANTILE_LEVELS))
+    if presorted is None:
+        presorted = np.sort(np.asarray(values, dtype=float).ravel())
+    return tuple(diagnostics.quantiles_of_sorted(presorted, _LEVELS).tolist())
 
 
 @dataclass(frozen=True)
@@ -280,6 +287,9 @@ def analyse_metric(data: MetricInput, job: JobConfig, n_metrics: int = 1) -> Met
     from :func:`finalise`."""
     m = data.metric
     min_n = max(2, job.quality.min_rows_per_segment)
+    # each segment's values sorted once: quantiles, medians, quartiles and Shapiro-Wilk read them
+    ordered = {id(s): np.sort(np.asarray(s.values, dtype=float).ravel())
+               for s in data.segments if s.values is not None}
     kept = [s for s in data.segments if s.moments.n >= min_n]
     dropped = [s for s in data.segments if s.moments.n < min_n]
     notes: list[str] = []
@@ -297,7 +307,7 @@ def analyse_metric(data: MetricInput, job: JobConfig, n_metrics: int = 1) -> Met
 
     rows = [
         SegmentRow(s.segment, s.moments.n, _f(s.moments.mean), _f(s.moments.sd), excluded=s.moments.n < min_n,
-                   quantiles=segment_quantiles(s.values))
+                   quantiles=segment_quantiles(s.values, presorted=ordered.get(id(s))))
         for s in data.segments
     ]
 
@@ -319,7 +329,8 @@ def analyse_metric(data: MetricInput, job: JobConfig, n_metrics: int = 1) -> Met
         )
 
     checks: dict[str, Check] = (
-        diagnostics.run_checks(labels, groups, samples) if has_values else {}
+        diagnostics.run_checks(labels, groups, samples, presorted=[ordered[id(s)] for s in kept])
+        if has_values else {}
     )
     if m.test == "auto":
         choice = diagnostics.choose_method(groups, samples if has_values else None, checks, labels=labels)
@@ -508,7 +519,7 @@ def finalise(results: Sequence[MetricResult], job: JobConfig) -> tuple[MetricRes
     out = []
     for r, qv, sig in zip(results, q, sig_all):
         pairs = tuple(
-            replace(pr, significant=bool(sig and math.isfinite(pr.p_adj) and pr.p_adj <= level))
+            _with_significant(pr, bool(sig and math.isfinite(pr.p_adj) and pr.p_adj <= level))
             for pr in r.pairs
         )
         segs = r.segments
@@ -523,6 +534,20 @@ def finalise(results: Sequence[MetricResult], job: JobConfig) -> tuple[MetricRes
         segs = tuple(replace(s, flag=s.direction if sig else None) for s in segs)
         out.append(replace(r, q_value=float(qv), significant=sig, pairs=pairs, segments=segs, pair_level=level))
     return tuple(out)
+
+
+def _with_significant(pair: PairRow, significant: bool) -> PairRow:
+    """``replace(pair, significant=significant)``, cheaply: tens of thousands of pairs per period.
+
+    The same pair when nothing changes (the rows are frozen); otherwise a copy of its
+    fields with the new verdict (PairRow has no ``__post_init__`` for ``replace`` to run).
+    """
+    if pair.significant is significant:
+        return pair
+    new = object.__new__(PairRow)
+    new.__dict__.update(pair.__dict__)
+    new.__dict__["significant"] = significant
+    return new
 
 
 def analyse_period(inputs: Sequence[MetricInput], job: JobConfig) -> tuple[MetricResult, ...]:
@@ -546,6 +571,8 @@ def _f(x: Any) -> float:
 
 def _num(x: Any) -> float | int | None:
     """A JSON-safe number: None for NaN/inf/None."""
+    if type(x) is float:  # the usual case, first
+        return x if math.isfinite(x) else None
     if x is None:
         return None
     if isinstance(x, (bool, np.bool_)):

@@ -34,8 +34,9 @@ On SQLite the file runs in WAL mode and write transactions start with
 from __future__ import annotations
 
 import json
-import threading
 import logging
+import math
+import threading
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -396,20 +397,15 @@ class History:
                 ))
                 if results:
                     conn.execute(sa.insert(metric_results), [_metric_row(key, r) for r in results])
-                seg_rows = [
-                    {**key, "metric": r.metric, "segment": s.segment, "n": s.n, "mean": _fl(s.mean),
-                     "sd": _fl(s.sd), "flag": s.flag}
-                    for r in results for s in r.segments
-                ]
-                if seg_rows:
-                    conn.execute(sa.insert(segment_results), seg_rows)
-                pair_rows = [
-                    {**key, "metric": r.metric, "a": p.a, "b": p.b, "diff": _fl(p.diff),
-                     "p_adj": _fl(p.p_adj), "significant": p.significant}
-                    for r in results for p in r.pairs
-                ]
-                if pair_rows:
-                    conn.execute(sa.insert(pair_results), pair_rows)
+                job, ident = self.job, period.ident
+                _insert_rows(conn, segment_results,
+                             ("job", "period", "metric", "segment", "n", "mean", "sd", "flag"),
+                             [(job, ident, r.metric, s.segment, s.n, _fl(s.mean), _fl(s.sd), s.flag)
+                              for r in results for s in r.segments])
+                _insert_rows(conn, pair_results,
+                             ("job", "period", "metric", "a", "b", "diff", "p_adj", "significant"),
+                             [(job, ident, r.metric, p.a, p.b, _fl(p.diff), _fl(p.p_adj), p.significant)
+                              for r in results for p in r.pairs])
                 return self._reconcile_events(conn, period, events, channels, now)
         except LeaseLost:
             raise
@@ -652,10 +648,49 @@ def _event_dict(r: Mapping[str, Any]) -> dict[str, Any]:
 
 
 def _fl(x: Any) -> float | None:
+    if type(x) is float:  # the usual case, first
+        return x if math.isfinite(x) else None
     if x is None:
         return None
     v = float(x)
-    return v if v == v and v not in (float("inf"), float("-inf")) else None
+    return v if math.isfinite(v) else None
+
+
+def _insert_rows(conn: sa.Connection, table: sa.Table, columns: Sequence[str],
+                 rows: Sequence[tuple]) -> None:
+    """Insert many rows (tuples in ``columns`` order) with one driver-level ``executemany``.
+
+    The same statement SQLAlchemy would send (compiled for this connection's dialect,
+    positional or named parameters as the driver wants) and the same per-column type
+    conversions (each column type's bind processor), without SQLAlchemy's per-row
+    parameter bookkeeping, which costs more than the insert itself for the tens of
+    thousands of pair rows of a large period.
+    """
+    if not rows:
+        return
+    dialect = conn.dialect
+    compiled = sa.insert(table).compile(dialect=dialect, column_keys=list(columns))
+    position = {name: i for i, name in enumerate(columns)}
+    names = list(compiled.positiontup) if compiled.positional else list(compiled.binds)
+    keys = [compiled.binds[name].key for name in names]
+    if set(keys) != set(columns):  # pragma: no cover - a statement shape this helper does not know
+        conn.execute(sa.insert(table), [dict(zip(columns, row)) for row in rows])
+        return
+    processors = [table.c[k].type.dialect_impl(dialect).bind_processor(dialect) for k in keys]
+    picks = [position[k] for k in keys]
+    if any(processors):  # column by column, as SQLAlchemy applies them (None included)
+        by_column = list(zip(*rows))
+        rows = list(zip(*(by_column[i] if f is None else list(map(f, by_column[i]))
+                          for f, i in zip(processors, picks))))
+    elif picks != list(range(len(columns))):
+        rows = [tuple(row[i] for i in picks) for row in rows]
+    if compiled.positional:
+        params: Sequence[Any] = rows
+    else:
+        escaped = getattr(compiled, "escaped_bind_names", None) or {}
+        bind_keys = [escaped.get(name, name) for name in names]
+        params = [dict(zip(bind_keys, row)) for row in rows]
+    conn.exec_driver_sql(compiled.string, params)
 
 
 def _make_engine(url: str) -> Engine:

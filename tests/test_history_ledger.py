@@ -321,6 +321,56 @@ def test_an_old_outbox_table_gains_the_backoff_column(history_url):
         h.dispose()
 
 
+# ------------------------------------------------------------------ segment and pair rows
+
+
+def test_segment_and_pair_rows_are_stored_as_given_and_replaced_on_rerun(history):
+    # store_period writes these rows with one driver-level executemany (positional on
+    # SQLite, named on PostgreSQL); every column must land in its own place, NaN as NULL
+    from monitor.analysis import MetricResult, PairRow, QualityCounts, SegmentRow
+    from monitor.history import pair_results, segment_results
+
+    period = parse_period("week", "2026-W11", "UTC")
+    segs = (SegmentRow("A", 30, 20.5, 3.25, flag="high"), SegmentRow("B", 2, float("nan"), float("nan")),
+            SegmentRow("C", 31, 19.0, 2.5, flag=None))
+    pairs = (PairRow("A", "B", float("nan"), float("nan")),
+             PairRow("A", "C", 1.5, 0.0125, significant=True),
+             PairRow("B", "C", -0.75, 0.5, significant=False))
+
+    def result(metric: str, pair_rows: tuple) -> MetricResult:
+        return MetricResult(metric=metric, column=metric, requested="anova", method="anova", method_reason="set",
+                            statistic=4.0, df=(2.0, 60.0), p_value=0.02, effect_size=None, segments=segs,
+                            pairs=pair_rows, posthoc="tukey-kramer", assumptions={}, quality=QualityCounts(63))
+
+    kw = dict(computed_at=T0, fingerprint="f", rows=63, null_segment_rows=0, segments=["A", "B", "C"])
+    history.store_period(period, [result("dwell", pairs), result("cost", pairs[1:])], [], ["log:x"], **kw)
+    with history.engine.connect() as conn:
+        got_segs = conn.execute(sa.select(
+            segment_results.c.job, segment_results.c.period, segment_results.c.metric, segment_results.c.segment,
+            segment_results.c.n, segment_results.c.mean, segment_results.c.sd, segment_results.c.flag,
+        ).order_by(segment_results.c.metric, segment_results.c.segment)).all()
+        got_pairs = conn.execute(sa.select(
+            pair_results.c.job, pair_results.c.period, pair_results.c.metric, pair_results.c.a, pair_results.c.b,
+            pair_results.c.diff, pair_results.c.p_adj, pair_results.c.significant,
+        ).order_by(pair_results.c.metric, pair_results.c.a, pair_results.c.b)).all()
+    seg_rows = [("A", 30, 20.5, 3.25, "high"), ("B", 2, None, None, None), ("C", 31, 19.0, 2.5, None)]
+    assert [tuple(r) for r in got_segs] == [("hubs", "2026-W11", m, *row) for m in ("cost", "dwell")
+                                            for row in seg_rows]
+    assert [tuple(r) for r in got_pairs] == [
+        ("hubs", "2026-W11", "cost", "A", "C", 1.5, 0.0125, True),
+        ("hubs", "2026-W11", "cost", "B", "C", -0.75, 0.5, False),
+        ("hubs", "2026-W11", "dwell", "A", "B", None, None, False),
+        ("hubs", "2026-W11", "dwell", "A", "C", 1.5, 0.0125, True),
+        ("hubs", "2026-W11", "dwell", "B", "C", -0.75, 0.5, False),
+    ]
+    # a re-run replaces the period's rows whole
+    history.store_period(period, [result("dwell", pairs[2:])], [], ["log:x"], **kw)
+    with history.engine.connect() as conn:
+        assert conn.execute(sa.select(sa.func.count()).select_from(segment_results)).scalar_one() == 3
+        assert [tuple(r) for r in conn.execute(sa.select(pair_results.c.metric, pair_results.c.a, pair_results.c.b,
+                                                         pair_results.c.significant))] == [("dwell", "B", "C", False)]
+
+
 # ------------------------------------------------------------------ a whole run on each backend
 
 

@@ -21,10 +21,13 @@ from monitor.stats.diagnostics import (
     Check,
     MethodChoice,
     brown_forsythe,
+    _shapiro_p,
     choose_method,
+    median_of_sorted,
     n_ratio,
     normality,
     outlier_share,
+    quantiles_of_sorted,
     run_checks,
     sd_ratio,
 )
@@ -346,3 +349,59 @@ class TestDegenerate:
         assert singles["brown_forsythe"].detail == (
             "Brown-Forsythe test is undefined because every segment has a single record."
         )
+
+
+class TestSortedOnce:
+    """run_checks sorts each sample once and reads medians, quartiles and Shapiro-Wilk off
+    the sorted copy; every number must be the very one numpy and scipy give (exact equality,
+    not a tolerance: the sorted path is the same arithmetic)."""
+
+    @staticmethod
+    def _samples():
+        rng = np.random.default_rng(20260309)
+        out = [rng.normal(0, 1, n) for n in (1, 2, 3, 4, 5, 7, 10, 31, 100, 999, 5000)]
+        out.append(np.round(rng.exponential(2.0, 400), 1))  # many ties
+        out.append(np.array([0.0, -0.0, 1.5, -2.25, 0.0, 3.0]))  # signed zeros
+        out.append(np.full(6, 4.5))  # no spread
+        return out
+
+    def test_quantiles_match_numpy_quantile_and_percentile(self):
+        levels = np.array([0.0, 0.05, 0.25, 0.5, 0.75, 0.95, 1.0])  # numpy's default method='linear'
+        for a in self._samples():
+            got = quantiles_of_sorted(np.sort(a), levels)
+            assert got.tolist() == np.quantile(a, levels).tolist()
+            assert quantiles_of_sorted(np.sort(a), np.array([0.25, 0.75])).tolist() == \
+                np.percentile(a, [25.0, 75.0]).tolist()
+
+    def test_median_matches_numpy_median(self):
+        for a in self._samples():
+            assert median_of_sorted(np.sort(a)) == np.median(a)
+
+    def test_no_values_and_nan_give_nan_as_numpy(self):
+        assert np.isnan(quantiles_of_sorted(np.empty(0), np.array([0.5]))).all()
+        assert math.isnan(median_of_sorted(np.empty(0)))
+        with_nan = np.sort(np.array([1.0, np.nan, 3.0]))
+        assert np.isnan(quantiles_of_sorted(with_nan, np.array([0.25, 0.5]))).all()
+        assert np.isnan(np.quantile(np.array([1.0, np.nan, 3.0]), [0.25, 0.5])).all()  # numpy agrees
+        assert math.isnan(median_of_sorted(with_nan))
+
+    def test_shapiro_on_sorted_values_is_scipy_shapiro(self):
+        for a in self._samples():
+            if a.size < 3 or a.min() == a.max():
+                continue  # not tested by normality()
+            assert _shapiro_p(a, np.sort(a)) == float(stats.shapiro(a).pvalue)  # scipy.stats.shapiro
+            assert _shapiro_p(a, None) == float(stats.shapiro(a).pvalue)
+
+    def test_checks_with_and_without_a_sorted_copy_are_identical(self):
+        rng = np.random.default_rng(7)
+        samples = [rng.normal(10, 2, 40), rng.lognormal(1, 0.8, 55), np.round(rng.normal(9, 1, 33), 1)]
+        labels = ["North", "Port", "Ridge"]
+        ordered = [np.sort(a) for a in samples]
+        # the public checks alone use numpy.median / numpy.percentile / scipy.stats.shapiro
+        assert brown_forsythe(samples, labels=labels, presorted=ordered) == brown_forsythe(samples, labels=labels)
+        assert normality(samples, labels=labels, presorted=ordered) == normality(samples, labels=labels)
+        assert outlier_share(samples, labels=labels, presorted=ordered) == outlier_share(samples, labels=labels)
+        checks = run_checks(labels, None, samples)
+        assert checks["brown_forsythe"] == brown_forsythe(samples, labels=labels)
+        assert checks["normality"] == normality(samples, labels=labels)
+        assert checks["outlier_share"] == outlier_share(samples, labels=labels)

@@ -60,6 +60,13 @@ from monitor.stats.posthoc import (
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from monitor.stats.summary import Moments
 
+try:  # the Fortran routine behind scipy.stats.shapiro (AS R94), used on values sorted once here
+    from scipy.stats import _morestats as _scipy_morestats
+
+    _SWILK = getattr(_scipy_morestats, "swilk", None)
+except ImportError:  # pragma: no cover - another scipy layout: scipy.stats.shapiro is used instead
+    _SWILK = None
+
 __all__ = [
     "CHECK_NAMES",
     "Check",
@@ -68,9 +75,11 @@ __all__ = [
     "SKEWNESS_LIMIT",
     "brown_forsythe",
     "choose_method",
+    "median_of_sorted",
     "n_ratio",
     "normality",
     "outlier_share",
+    "quantiles_of_sorted",
     "run_checks",
     "sd_ratio",
 ]
@@ -135,7 +144,11 @@ class MethodChoice:
 # the checks
 # ---------------------------------------------------------------------------
 def brown_forsythe(
-    samples: Sequence[np.ndarray], alpha: float = 0.05, *, labels: Sequence[str] | None = None
+    samples: Sequence[np.ndarray],
+    alpha: float = 0.05,
+    *,
+    labels: Sequence[str] | None = None,
+    presorted: Sequence[np.ndarray] | None = None,
 ) -> Check:
     """Brown-Forsythe test of equal spreads across segments.
 
@@ -147,6 +160,10 @@ def brown_forsythe(
         Level of the test (default 0.05).
     labels : sequence of str, optional
         Segment names, for messages.
+    presorted : sequence of 1-D arrays, optional
+        The same samples, each sorted ascending (``numpy.sort``), when the
+        caller has them: the medians are then read off instead of found
+        again. Trusted, not checked. The result is the same either way.
 
     Returns
     -------
@@ -177,6 +194,8 @@ def brown_forsythe(
     _check_alpha(alpha, "alpha")
     labels, arrays = _labelled_samples(samples, labels)
     name = "brown_forsythe"
+    if presorted is not None:
+        medians = [median_of_sorted(s) for a, s in zip(arrays, presorted) if a.size > 0]
     arrays = [a for a in arrays if a.size > 0]
     k = len(arrays)
     big_n = sum(a.size for a in arrays)
@@ -187,7 +206,9 @@ def brown_forsythe(
     if big_n - k < 1:
         return Check(name, _NAN, alpha, None,
                      "Brown-Forsythe test is undefined because every segment has a single record.")
-    z = [np.abs(a - np.median(a)) for a in arrays]
+    if presorted is None:
+        medians = [np.median(a) for a in arrays]
+    z = [np.abs(a - m) for a, m in zip(arrays, medians)]
     z_means = np.array([zi.mean() for zi in z])
     sizes = np.array([zi.size for zi in z], dtype=float)
     grand = float(np.sum(sizes * z_means) / big_n)
@@ -213,6 +234,7 @@ def normality(
     max_shapiro_n: int = 5000,
     *,
     labels: Sequence[str] | None = None,
+    presorted: Sequence[np.ndarray] | None = None,
 ) -> Check:
     """Per-segment normality tests, combined with Holm's adjustment.
 
@@ -227,6 +249,10 @@ def normality(
         larger segments use D'Agostino-Pearson. From 20 to 5000.
     labels : sequence of str, optional
         Segment names, for messages.
+    presorted : sequence of 1-D arrays, optional
+        The same samples, each sorted ascending (``numpy.sort``), when the
+        caller has them: Shapiro-Wilk then skips its own sort. Trusted, not
+        checked. The p-values are the same either way (see :func:`_shapiro_p`).
 
     Returns
     -------
@@ -267,12 +293,18 @@ def normality(
     name = "normality"
     tested: list[tuple[str, int, str, float]] = []  # label, n, test, p
     skipped = 0
-    for label, a in zip(labels, arrays):
-        if a.size < 3 or float(a.min()) == float(a.max()):
+    for i, (label, a) in enumerate(zip(labels, arrays)):
+        if presorted is not None:
+            ordered = presorted[i]
+            flat = a.size < 3 or float(ordered[0]) == float(ordered[-1])
+        else:
+            ordered = None
+            flat = a.size < 3 or float(a.min()) == float(a.max())
+        if flat:
             skipped += 1
             continue
         if a.size <= max_shapiro_n:
-            tested.append((label, a.size, "Shapiro-Wilk", float(stats.shapiro(a).pvalue)))
+            tested.append((label, a.size, "Shapiro-Wilk", _shapiro_p(a, ordered)))
         else:
             tested.append((label, a.size, "D'Agostino-Pearson", float(stats.normaltest(a).pvalue)))
     if not tested:
@@ -390,7 +422,11 @@ def n_ratio(
 
 
 def outlier_share(
-    samples: Sequence[np.ndarray], threshold: float = 0.05, *, labels: Sequence[str] | None = None
+    samples: Sequence[np.ndarray],
+    threshold: float = 0.05,
+    *,
+    labels: Sequence[str] | None = None,
+    presorted: Sequence[np.ndarray] | None = None,
 ) -> Check:
     """Share of values beyond Tukey's far fences of their own segment.
 
@@ -402,6 +438,10 @@ def outlier_share(
         Largest acceptable share (default 0.05).
     labels : sequence of str, optional
         Segment names, for messages.
+    presorted : sequence of 1-D arrays, optional
+        The same samples, each sorted ascending (``numpy.sort``), when the
+        caller has them: the quartiles are then read off instead of found
+        again. Trusted, not checked. The result is the same either way.
 
     Returns
     -------
@@ -433,10 +473,13 @@ def outlier_share(
         return Check(name, _NAN, threshold, None,
                      "The outlier share could not be computed because there are no records.")
     counts = []
-    for label, a in zip(labels, arrays):
+    for i, (label, a) in enumerate(zip(labels, arrays)):
         if a.size == 0:
             continue
-        q1, q3 = np.percentile(a, [25.0, 75.0])
+        if presorted is not None:
+            q1, q3 = quantiles_of_sorted(presorted[i], _QUARTILES)
+        else:
+            q1, q3 = np.percentile(a, [25.0, 75.0])
         iqr = q3 - q1
         outside = int(np.count_nonzero((a < q1 - 3.0 * iqr) | (a > q3 + 3.0 * iqr)))
         counts.append((label, outside, a.size))
@@ -455,6 +498,8 @@ def run_checks(
     labels: Sequence[str],
     groups: Sequence[Moments] | None,
     samples: Sequence[np.ndarray] | None,
+    *,
+    presorted: Sequence[np.ndarray] | None = None,
 ) -> dict[str, Check]:
     """Run all five checks with their default thresholds.
 
@@ -468,6 +513,10 @@ def run_checks(
         Per-segment raw values; without them the sample-based checks
         (``brown_forsythe``, ``normality``, ``outlier_share``) are not
         computed (``passed=None``).
+    presorted : sequence of 1-D arrays, optional
+        ``numpy.sort`` of each sample, when the caller has them (trusted, not
+        checked); otherwise each sample is sorted here, once, and the sorted
+        copy serves the medians, the quartiles and Shapiro-Wilk.
 
     Returns
     -------
@@ -486,15 +535,17 @@ def run_checks(
     labels = _check_labels(labels, groups, "groups")
     checks: dict[str, Check] = {}
     if samples is not None:
-        checks["brown_forsythe"] = brown_forsythe(samples, labels=labels)
-        checks["normality"] = normality(samples, labels=labels)
+        if presorted is None:
+            presorted = [np.sort(a) for a in samples]  # once, for medians, quartiles and Shapiro-Wilk
+        checks["brown_forsythe"] = brown_forsythe(samples, labels=labels, presorted=presorted)
+        checks["normality"] = normality(samples, labels=labels, presorted=presorted)
     else:
         checks["brown_forsythe"] = _no_samples("brown_forsythe", 0.05, "the Brown-Forsythe test")
         checks["normality"] = _no_samples("normality", 0.01, "normality")
     checks["sd_ratio"] = sd_ratio(groups, labels=labels)
     checks["n_ratio"] = n_ratio(groups, labels=labels)
     if samples is not None:
-        checks["outlier_share"] = outlier_share(samples, labels=labels)
+        checks["outlier_share"] = outlier_share(samples, labels=labels, presorted=presorted)
     else:
         checks["outlier_share"] = _no_samples("outlier_share", 0.05, "the outlier share")
     for check in checks.values():
@@ -602,6 +653,109 @@ def choose_method(
         "Fisher's ANOVA: no strong non-normality in small segments, about equal sizes and no sign of "
         f"unequal spreads ({spread_text}).",
     )
+
+
+# ---------------------------------------------------------------------------
+# order statistics of sorted values (one sort serves every check)
+# ---------------------------------------------------------------------------
+_QUARTILES = np.array([0.25, 0.75])
+
+
+def quantiles_of_sorted(ordered: np.ndarray, levels: np.ndarray) -> np.ndarray:
+    """Quantiles of values already sorted ascending, exactly as ``numpy.quantile``.
+
+    Parameters
+    ----------
+    ordered : 1-D float array
+        ``numpy.sort`` of the values (trusted, not checked).
+    levels : 1-D float array
+        Probabilities in ``[0, 1]``.
+
+    Returns
+    -------
+    numpy.ndarray
+        One quantile per level; all NaN when the values hold a NaN (as numpy).
+
+    Notes
+    -----
+    Linear interpolation between order statistics (Hyndman & Fan 1996 [1]_,
+    definition 7; numpy's default ``method='linear'``), with numpy's own
+    arithmetic step for step (virtual index ``(n - 1) p``, and the two-sided
+    ``lerp`` that is exact at both ends), so the values agree bit for bit with
+    ``numpy.quantile`` / ``numpy.percentile`` on the unsorted values (checked
+    in ``tests/test_stats_diagnostics.py``). Reading them off a sorted copy
+    avoids a partition per call.
+
+    References
+    ----------
+    .. [1] Hyndman, R. J. and Fan, Y. (1996). Sample quantiles in statistical
+       packages. The American Statistician 50(4), 361-365.
+    """
+    n = ordered.size
+    if n == 0:
+        return np.full(levels.shape, _NAN)
+    if math.isnan(ordered[-1]):  # NaN sorts last; numpy returns NaN for every level
+        return np.full(levels.shape, _NAN)
+    virtual = (n - 1) * levels
+    previous = np.floor(virtual)
+    following = previous + 1
+    above = virtual >= n - 1
+    previous[above] = -1
+    following[above] = -1
+    below = virtual < 0
+    previous[below] = 0
+    following[below] = 0
+    previous = previous.astype(np.intp)
+    following = following.astype(np.intp)
+    gamma = virtual - previous
+    a = ordered[previous]
+    b = ordered[following]
+    diff = b - a
+    out = a + diff * gamma
+    np.subtract(b, diff * (1 - gamma), out=out, where=gamma >= 0.5)
+    return out
+
+
+def median_of_sorted(ordered: np.ndarray) -> float:
+    """The median of values already sorted ascending, exactly as ``numpy.median``.
+
+    The middle value, or the mean of the two middle values (their sum halved,
+    as ``numpy.mean`` of two numbers); NaN for no values or when a NaN is
+    present (it sorts last), as numpy.
+    """
+    n = ordered.size
+    if n == 0 or math.isnan(ordered[-1]):
+        return _NAN
+    half = n // 2
+    if n % 2:
+        return ordered[half]
+    return (ordered[half - 1] + ordered[half]) / 2.0
+
+
+def _shapiro_p(values: np.ndarray, ordered: np.ndarray | None) -> float:
+    """Shapiro-Wilk p-value of ``values`` (3 to 5000 of them, not all equal).
+
+    ``scipy.stats.shapiro`` sorts the values, subtracts the one at position
+    ``n // 2`` of the *unsorted* input and calls the Fortran routine of Royston
+    (1995, Applied Statistics algorithm AS R94). With the values already
+    sorted this does the same steps without the second sort and without the
+    argument-handling layer, so the p-value is the very same number
+    (checked against ``scipy.stats.shapiro`` in
+    ``tests/test_stats_diagnostics.py``). Without a sorted copy, or if the
+    routine is not where this scipy keeps it, or it reports anything but
+    success, ``scipy.stats.shapiro`` itself is called.
+    """
+    if ordered is not None and _SWILK is not None:
+        n = values.size
+        shifted = ordered - values[n // 2]
+        try:
+            _w, pw, ifault = _SWILK(shifted, np.zeros(n // 2, dtype=np.float64), 0)
+        except (TypeError, ValueError):  # pragma: no cover - a scipy whose routine changed
+            pass
+        else:
+            if ifault in (0, 2):
+                return float(pw)
+    return float(stats.shapiro(values).pvalue)
 
 
 # ---------------------------------------------------------------------------

@@ -451,7 +451,7 @@ def majority_of_pairs(
     above = dict.fromkeys(labels, 0)
     below = dict.fromkeys(labels, 0)
     for a, b, diff, p in pairs:
-        if not (np.isfinite(p) and p <= alpha and np.isfinite(diff)) or diff == 0:
+        if not (math.isfinite(p) and p <= alpha and math.isfinite(diff)) or diff == 0:
             continue
         hi, lo = (a, b) if diff > 0 else (b, a)
         if hi in above:

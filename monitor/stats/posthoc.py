@@ -368,7 +368,11 @@ def _check_samples(labels: Sequence[str], samples: Sequence) -> list[np.ndarray]
             raise ValueError(
                 f"samples must hold numbers; segment {label!r} holds something else"
             ) from None
-        bad = int(np.count_nonzero(~np.isfinite(arr)))
+        # a finite sum proves every value finite (NaN and inf propagate); only a sum that is
+        # not finite (a bad value, or an overflow of huge finite ones) needs the count
+        with np.errstate(over="ignore", invalid="ignore"):
+            total = arr.sum()
+        bad = 0 if math.isfinite(total) else int(np.count_nonzero(~np.isfinite(arr)))
         if bad:
             raise ValueError(
                 f"samples must hold finite numbers only; segment {label!r} has "
@@ -494,35 +498,45 @@ def _tukey_core(
     q_crit = (
         float(srange_ppf(confidence, k, df)) if usable else _NAN
     )
-    # first the pairs' statistics, then all their p-values in one vectorised call
-    rows: list[tuple[int, int, float, float, float] | None] = []
-    for i, j in _upper_pairs(len(labels)):
-        si, sj = summaries[i], summaries[j]
-        if si.n == 0 or sj.n == 0 or not usable:
-            rows.append(None)
-            continue
-        diff = si.mean - sj.mean
-        se_t = math.sqrt(mse * (1.0 / si.n + 1.0 / sj.n))
-        se_q = se_t / math.sqrt(2.0)
-        rows.append((i, j, diff, se_t, abs(diff) / se_q))
-    q_values = [r[4] for r in rows if r is not None]
-    p_values = iter(_clipped(srange_sf(np.array(q_values), k, df)) if q_values else ())
-    pairs = []
-    for (i, j), row in zip(_upper_pairs(len(labels)), rows):
-        si, sj = summaries[i], summaries[j]
-        if si.n == 0 or sj.n == 0:
-            pairs.append(_nan_pair(labels[i], labels[j]))
-            continue
-        diff = si.mean - sj.mean
-        if row is None:
-            pairs.append(_nan_pair(labels[i], labels[j], diff=diff, df=float(df) if df >= 1 else _NAN))
-            continue
-        _, _, diff, se_t, _ = row
-        half = q_crit * se_t / math.sqrt(2.0)
-        pairs.append(
-            Pair(labels[i], labels[j], diff, se_t, diff / se_t, float(df), next(p_values),
-                 diff - half, diff + half)
-        )
+    # all pairs at once (numpy does the same IEEE operations, element by element, as
+    # scalar arithmetic would), then all their p-values in one vectorised call
+    m = len(labels)
+    first, second = np.triu_indices(m, 1)  # the order of _upper_pairs: i < j, row by row
+    sizes = np.array([s.n for s in summaries], dtype=float)
+    means = np.array([s.mean for s in summaries], dtype=float)
+    both = (sizes[first] > 0) & (sizes[second] > 0)
+    with np.errstate(all="ignore"):  # empty segments give inf/NaN here; those pairs are not read
+        diff = means[first] - means[second]
+        if usable:
+            se_t = np.sqrt(mse * (1.0 / sizes[first] + 1.0 / sizes[second]))
+            q = np.abs(diff) / (se_t / math.sqrt(2.0))
+            half = q_crit * se_t / math.sqrt(2.0)
+            stat = diff / se_t
+            low, high = diff - half, diff + half
+    names = [(labels[i], labels[j]) for i, j in zip(first.tolist(), second.tolist())]
+    if not usable:
+        pairs = [
+            _nan_pair(a, b, diff=d, df=float(df) if df >= 1 else _NAN) if ok else _nan_pair(a, b)
+            for (a, b), ok, d in zip(names, both.tolist(), diff.tolist())
+        ]
+        return PostHocResult("tukey-kramer", tuple(pairs), confidence, _join(notes))
+    p_values = _clipped(srange_sf(q[both], k, df)) if both.any() else []
+    df_f = float(df)
+    if both.all():
+        pairs = [
+            Pair(a, b, d, se, t, df_f, p, lo, hi)
+            for (a, b), d, se, t, p, lo, hi in zip(
+                names, diff.tolist(), se_t.tolist(), stat.tolist(), p_values, low.tolist(), high.tolist()
+            )
+        ]
+    else:
+        p_iter = iter(p_values)
+        pairs = [
+            Pair(a, b, d, se, t, df_f, next(p_iter), lo, hi) if ok else _nan_pair(a, b)
+            for (a, b), ok, d, se, t, lo, hi in zip(
+                names, both.tolist(), diff.tolist(), se_t.tolist(), stat.tolist(), low.tolist(), high.tolist()
+            )
+        ]
     return PostHocResult("tukey-kramer", tuple(pairs), confidence, _join(notes))
 
 

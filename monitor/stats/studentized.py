@@ -282,16 +282,22 @@ def _g(u: np.ndarray, near_zero: bool) -> np.ndarray:
     in ``a g(u)``; that matters only for very large ``a`` (``df > 2e5``),
     when the caller asks for the series.
     """
+    if not near_zero:
+        return np.expm1(2.0 * u) - 2.0 * u
+    small = np.abs(u) < 0.1
+    every = bool(small.all())  # usual for large a: the whole window is near 0 (no gather/scatter)
+    t = 2.0 * (u if every else u[small])
+    term = t * t
+    term /= 2.0
+    total = term.copy()
+    for n in range(3, 14):  # sum_{n>=2} t^n / n!; remainder < 1e-19
+        term *= t  # in place: the same operations, in the same order, as term = term * t / n
+        term /= n
+        total += term
+    if every:
+        return total
     out = np.expm1(2.0 * u) - 2.0 * u
-    if near_zero:
-        small = np.abs(u) < 0.1
-        t = 2.0 * u[small]
-        term = t * t / 2.0
-        total = term.copy()
-        for n in range(3, 14):  # sum_{n>=2} t^n / n!; remainder < 1e-19
-            term = term * t / n
-            total += term
-        out[small] = total
+    out[small] = total
     return out
 
 
