@@ -42,7 +42,7 @@ import time
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from decimal import Decimal
-from typing import Any, Sequence
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
@@ -114,6 +114,8 @@ class Source:
         self._from: sa.FromClause | None = None
         self._version: tuple[str, tuple[int, ...] | None] | None = None
         self._fallback_logged = False
+        #: Try the direct aggregate form first (see pushdown.direct_query); tests switch it off.
+        self.direct = True
 
     # -------------------------------------------------------------- structure
 
@@ -258,10 +260,10 @@ class Source:
                 if traits.name in _SNAPSHOT_ENGINES:
                     conn = conn.execution_options(isolation_level="REPEATABLE READ")
                 with conn.begin():
+                    _tune_session(conn, traits)
                     shifts = self._shifts(conn, rel, plans, where, traits)
                     step = "the aggregate query"
-                    stmt = pushdown.aggregate_query(rel, seg_key, plans, where, shifts, traits)
-                    agg = pushdown.read_aggregate(conn.execute(stmt).mappings(), plans, shifts, traits)
+                    agg = self._aggregate(conn, rel, plans, where, shifts, traits, period)
                     step = "the values query"
                     plan = plan_sample(sampling.mode, sampling.cap, sampling.seed, agg.rows)
                     values = self._values(conn, rel, plans, where, traits, agg, plan)
@@ -287,6 +289,39 @@ class Source:
         return PeriodData(tuple(inputs), rows=agg.total_rows, null_segment_rows=agg.null_segment_rows,
                           segments=agg.labels, compute="pushdown", sampled=plan.any)
 
+    def _aggregate(self, conn: sa.Connection, rel: sa.FromClause, plans: Sequence[MetricPlan],
+                   where: sa.ColumnElement[bool], shifts: Mapping[int, Shift], traits: EngineTraits,
+                   period: Period) -> Aggregate:
+        """The period's per-segment sums: the direct query first where it may serve,
+        the row-by-row query when it may not or when the direct result shows a
+        non-finite value (see :func:`pushdown.direct_query`)."""
+        agg, direct = self._sums(conn, rel, plans, where, shifts, traits, period)
+        far = pushdown.ill_shifted(agg, plans, shifts)
+        if far:
+            again = tuple(p for p in plans if p.position in far)
+            fixed = {i: shifts[i].per_segment(means) for i, means in far.items()}
+            log.debug("job %s: %s: metrics %s summed again with a shift per segment", self.job.job,
+                      period.ident, ", ".join(p.metric.name for p in again))
+            second, _ = self._sums(conn, rel, again, where, fixed, traits, period, direct)
+            agg.metrics.update(second.metrics)
+        return agg
+
+    def _sums(self, conn: sa.Connection, rel: sa.FromClause, plans: Sequence[MetricPlan],
+              where: sa.ColumnElement[bool], shifts: Mapping[int, Shift], traits: EngineTraits,
+              period: Period, direct: bool | None = None) -> tuple[Aggregate, bool]:
+        """One aggregate pass; ``direct`` None tries the direct form when it may serve."""
+        seg_key = self.cfg.segment_column
+        if direct is None:
+            direct = self.direct and pushdown.direct_possible(plans, traits)
+        if direct:
+            stmt = pushdown.direct_query(rel, seg_key, plans, where, shifts)
+            rows = conn.execute(stmt).mappings().all()
+            if pushdown.direct_clean(rows, plans):
+                return pushdown.read_aggregate(rows, plans, shifts, traits, direct=True), True
+            log.debug("job %s: %s holds non-finite values; summing row by row", self.job.job, period.ident)
+        stmt = pushdown.aggregate_query(rel, seg_key, plans, where, shifts, traits)
+        return pushdown.read_aggregate(conn.execute(stmt).mappings(), plans, shifts, traits), False
+
     def _shifts(self, conn: sa.Connection, rel: sa.FromClause, plans: Sequence[MetricPlan],
                 where: sa.ColumnElement[bool], traits: EngineTraits) -> dict[int, Shift]:
         """One shift per metric: the probe, then the first usable value where the probe found none."""
@@ -307,12 +342,12 @@ class Source:
         seg_key = self.cfg.segment_column
         if not plan.any:
             stmt = pushdown.values_query(rel, seg_key, plans, where, traits)
-            labels, _, cols = _fetch_columns(conn, stmt, traits, len(plans), hashed=False)
+            labels, _, cols = _fetch_columns(conn, stmt, traits, len(plans), hashed=False, raw=agg.raw)
             return _split(_positions(labels, agg.labels), cols, plans)
         hashed = pushdown.hash_expr(self._sample_key(rel), plan.seed, traits)
         stmt = pushdown.values_query(rel, seg_key, plans, where, traits, hashed=hashed,
                                      thresholds=thresholds(plan, agg.rows, agg.raw))
-        labels, hashes, cols = _fetch_columns(conn, stmt, traits, len(plans), hashed=True)
+        labels, hashes, cols = _fetch_columns(conn, stmt, traits, len(plans), hashed=True, raw=agg.raw)
         groups = {lab: (hashes[m], [c[m] for c in cols])
                   for lab, m in _positions(labels, agg.labels).items()}
         del labels, hashes, cols  # the per-segment copies above are all that is kept
@@ -328,7 +363,7 @@ class Source:
             found = thresholds(plan, agg.rows, agg.raw, boost, only=short)
             stmt = pushdown.values_query(rel, seg_key, plans, where, traits, hashed=hashed,
                                          thresholds=found, only_listed=True)
-            labels2, hashes2, cols2 = _fetch_columns(conn, stmt, traits, len(plans), hashed=True)
+            labels2, hashes2, cols2 = _fetch_columns(conn, stmt, traits, len(plans), hashed=True, raw=agg.raw)
             again = _positions(labels2, short)
             for lab in short:
                 m = again[lab]
@@ -368,15 +403,35 @@ class Source:
         self.engine.dispose()
 
 
+def _tune_session(conn: sa.Connection, traits: EngineTraits) -> None:
+    """Per-transaction settings for segwatch's wide aggregate queries.
+
+    PostgreSQL 11+ compiles a query whose estimated cost passes ``jit_above_cost``
+    with LLVM; for a query with hundreds of aggregate expressions that compilation
+    alone took longer than the scan it was meant to speed up (about 4 s of 6 s at
+    2,000,000 rows x 20 metrics here), so JIT is switched off for segwatch's own
+    transaction (``SET LOCAL``; the server's setting is untouched).
+    """
+    if traits.name == "postgresql":
+        version = getattr(conn.dialect, "server_version_info", None) or (0,)
+        if version >= (11,):
+            conn.exec_driver_sql("SET LOCAL jit = off")
+
+
 def _fetch_columns(conn: sa.Connection, stmt: sa.Select, traits: EngineTraits, width: int, *,
-                   hashed: bool) -> tuple[np.ndarray, np.ndarray, list[np.ndarray]]:
+                   hashed: bool, raw: Mapping[str, Sequence[Any]] | None = None
+                   ) -> tuple[np.ndarray, np.ndarray, list[np.ndarray]]:
     """Run the values query and return its columns: segment labels, hashes (or an empty
     array) and one float array per metric (NaN where the value is not usable).
 
     Rows are streamed in chunks of :data:`FETCH_CHUNK` and turned into arrays chunk by
     chunk, so memory holds arrays, not millions of Python objects. DuckDB's row-by-row
-    fetch is slow, so its result is taken as numpy arrays directly.
+    fetch is slow, so its result is taken as numpy arrays directly; PostgreSQL's goes
+    through binary ``COPY`` (:func:`_copy_columns`) when ``raw`` (label -> raw segment
+    values) names the segments.
     """
+    if traits.name == "postgresql" and raw is not None and _copy_possible(conn, raw):
+        return _copy_columns(conn, stmt, width, hashed=hashed, raw=raw)
     if traits.name == "duckdb":
         result = conn.execute(stmt)
         if hasattr(result.cursor, "fetchnumpy"):
@@ -416,6 +471,108 @@ def _fetch_columns(conn: sa.Connection, stmt: sa.Select, traits: EngineTraits, w
     labels = names[merged[0]]
     hashes = merged[1] if hashed else np.empty(0, dtype="S32")
     return labels, hashes, merged[1 + hashed:]
+
+
+#: Most segments for which the values travel by binary COPY (each returned row maps
+#: its segment to a number with one CASE branch per segment).
+COPY_MAX_SEGMENTS = 200
+#: Bytes of the COPY stream gathered before numpy parses them.
+COPY_BLOCK_BYTES = 4 << 20
+_COPY_SIGNATURE = b"PGCOPY\n\xff\r\n\x00"
+
+
+def _copy_possible(conn: sa.Connection, raw: Mapping[str, Sequence[Any]]) -> bool:
+    n = sum(len(v) for v in raw.values())
+    driver = getattr(conn.connection, "driver_connection", None)
+    return 0 < n <= COPY_MAX_SEGMENTS and hasattr(getattr(driver, "cursor", None), "__call__") \
+        and type(driver).__module__.startswith("psycopg")
+
+
+def _copy_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed: bool,
+                  raw: Mapping[str, Sequence[Any]]) -> tuple[np.ndarray, np.ndarray, list[np.ndarray]]:
+    """The values query through PostgreSQL's binary ``COPY ... TO STDOUT``, parsed by numpy.
+
+    The rows are reshaped so that every field has a fixed width: the segment becomes
+    its number in ``raw`` (``CASE``), the hash stays 32 hex characters, and a value
+    that is not usable becomes NaN instead of NULL. Each row then has the same layout
+    (PostgreSQL's documented binary copy format: a 16-bit field count, then per field
+    a 32-bit length and the big-endian value), so chunks of the stream are read with
+    one structured numpy dtype instead of creating a Python object per value. Runs on
+    the transaction's own connection, inside its snapshot.
+    """
+    sub = stmt.subquery("segwatch_values")
+    names: list[str] = []
+    whens: dict[Any, int] = {}
+    for label in sorted(raw):
+        for value in raw[label]:
+            whens[value] = len(names)
+            names.append(label)
+    cols: list[sa.ColumnElement] = [sa.case(whens, value=sub.c.seg, else_=-1).label("g")]
+    if hashed:
+        cols.append(sub.c.h)
+    nan = sa.cast(sa.literal("NaN"), sa.Double())
+    cols += [sa.func.coalesce(sub.c[f"v{j}"], nan) for j in _value_positions(sub)]
+    if len(cols) - 1 - hashed != width:
+        raise AssertionError("values query columns do not match the metrics")
+    compiled = sa.select(*cols).compile(dialect=conn.dialect, compile_kwargs={"render_postcompile": True})
+    fields = [("nf", ">i2"), ("l_g", ">i4"), ("g", ">i4")]
+    if hashed:
+        fields += [("l_h", ">i4"), ("h", "S32")]
+    for j in range(width):
+        fields += [(f"l{j}", ">i4"), (f"v{j}", ">f8")]
+    dtype = np.dtype(fields)
+    expect = {"nf": len(cols), "l_g": 4, "l_h": 32, **{f"l{j}": 8 for j in range(width)}}
+    parts: list[np.ndarray] = []
+    buf = bytearray()
+    pending: list[bytes] = []  # libpq hands out one row per chunk: parse in blocks
+    size = 0
+    start = True
+
+    def parse() -> None:
+        nonlocal start, size
+        buf.extend(b"".join(pending))
+        pending.clear()
+        size = 0
+        if start:
+            if len(buf) < 19:
+                return
+            if bytes(buf[:11]) != _COPY_SIGNATURE:
+                raise SourceError("PostgreSQL COPY returned an unexpected header")
+            ext = int.from_bytes(buf[15:19], "big")
+            del buf[:19 + ext]
+            start = False
+        whole = len(buf) // dtype.itemsize * dtype.itemsize
+        if whole:
+            parts.append(np.frombuffer(bytes(buf[:whole]), dtype=dtype))
+            del buf[:whole]
+
+    cursor = conn.connection.driver_connection.cursor()
+    try:
+        with cursor.copy(f"COPY ({compiled}) TO STDOUT (FORMAT BINARY)", compiled.params) as copy:
+            for chunk in copy:
+                pending.append(bytes(chunk))
+                size += len(chunk)
+                if size >= COPY_BLOCK_BYTES:
+                    parse()
+        parse()
+    finally:
+        cursor.close()
+    if bytes(buf) not in (b"\xff\xff", b""):
+        raise SourceError("PostgreSQL COPY returned rows of an unexpected layout")
+    rows = np.concatenate(parts) if parts else np.empty(0, dtype=dtype)
+    for name, size in expect.items():
+        if name in dtype.names and rows.size and not np.all(rows[name] == size):
+            raise SourceError("PostgreSQL COPY returned rows of an unexpected layout")
+    if rows.size and (rows["g"] < 0).any():
+        raise SourceError("the values query returned a segment the aggregate query did not")
+    labels = np.array(names, dtype=object)[rows["g"]] if rows.size else np.empty(0, dtype=object)
+    hashes = rows["h"].copy() if hashed else np.empty(0, dtype="S32")
+    values = [rows[f"v{j}"].astype(float) for j in range(width)]
+    return labels, hashes, values
+
+
+def _value_positions(sub: sa.Subquery) -> list[int]:
+    return [int(c.key[1:]) for c in sub.c if c.key.startswith("v") and c.key[1:].isdigit()]
 
 
 def _positions(labels: np.ndarray, wanted: Sequence[str]) -> dict[str, np.ndarray]:
