@@ -115,21 +115,26 @@ class EngineTraits:
         The engine can store inf/NaN (all but MySQL/MariaDB).
     exact : bool
         ``NUMERIC``/``DECIMAL`` sums can be kept exact (PostgreSQL, MySQL/MariaDB).
+    version : tuple of int
+        The server's version once a connection has been made (empty before).
     """
 
     name: str
     typeof: bool
     non_finite: bool
     exact: bool
+    version: tuple[int, ...] = ()
 
     @classmethod
     def of(cls, dialect: sa.engine.Dialect) -> EngineTraits:
         name = dialect.name
+        version = getattr(dialect, "server_version_info", None) or ()
         return cls(
             name=name,
             typeof=name == "sqlite",
             non_finite=name != "mysql",
             exact=name in ("postgresql", "mysql"),
+            version=tuple(v for v in version if isinstance(v, int)),
         )
 
 
@@ -643,28 +648,49 @@ def ill_shifted(agg: Aggregate, plans: Sequence[MetricPlan], shifts: Mapping[int
     return out
 
 
-def hash_expr(key_columns: Sequence[sa.ColumnElement], seed: int, traits: EngineTraits) -> sa.ColumnElement:
-    """Lowercase hex MD5 of ``key1|key2|...:seed`` on every engine.
+def hash_kind(traits: EngineTraits) -> str:
+    """``int64`` where the engine has a fast seeded 64-bit hash (PostgreSQL 11+), else ``md5``."""
+    if traits.name == "postgresql" and traits.version >= (11,):
+        return "int64"
+    return "md5"
 
-    PostgreSQL, MySQL/MariaDB and DuckDB have ``md5(text)``; Trino hashes bytes
-    (``lower(to_hex(md5(to_utf8(...))))``); SQLite gets the Python function that
-    :mod:`monitor.db` registers on segwatch's connections. A NULL key part counts as
-    an empty string.
+
+def hash_expr(key_columns: Sequence[sa.ColumnElement], seed: int, traits: EngineTraits) -> sa.ColumnElement:
+    """The sampling hash of a row's key and the seed (see :mod:`monitor.sampling`).
+
+    ``md5``: lowercase hex MD5 of ``key1|key2|...:seed``. PostgreSQL, MySQL/MariaDB and
+    DuckDB have ``md5(text)``; Trino hashes bytes (``lower(to_hex(md5(to_utf8(...))))``);
+    SQLite gets the Python function that :mod:`monitor.db` registers on segwatch's
+    connections. ``int64`` (PostgreSQL 11+, :func:`hash_kind`):
+    ``hashint8extended(key, seed)`` for one integer key column, else
+    ``hashtextextended(key1|key2|..., seed)``. A NULL key part counts as an empty
+    string (as 0 for the integer hash).
     """
-    parts: list[sa.ColumnElement] = []
-    for j, c in enumerate(key_columns):
-        if j:
-            parts.append(sa.literal("|", sa.String()))
-        parts.append(sa.func.coalesce(sa.cast(c, sa.String()), sa.literal("", sa.String())))
-    parts.append(sa.literal(f":{int(seed)}", sa.String()))
-    text = parts[0]
-    for part in parts[1:]:
-        text = text.concat(part)
+    if hash_kind(traits) == "int64":
+        seed_lit = sa.literal(int(seed), sa.BigInteger())
+        if len(key_columns) == 1 and isinstance(key_columns[0].type, sa.Integer):
+            key = sa.func.coalesce(sa.cast(key_columns[0], sa.BigInteger()), sa.literal(0, sa.BigInteger()))
+            return sa.func.hashint8extended(key, seed_lit, type_=sa.BigInteger())
+        return sa.func.hashtextextended(_key_text(key_columns), seed_lit, type_=sa.BigInteger())
+    text = _key_text(key_columns).concat(sa.literal(f":{int(seed)}", sa.String()))
     if traits.name == "sqlite":
         return getattr(sa.func, SQLITE_MD5)(text, type_=sa.String())
     if traits.name == "trino":
         return sa.func.lower(sa.func.to_hex(sa.func.md5(sa.func.to_utf8(text))), type_=sa.String())
     return sa.func.md5(text, type_=sa.String())
+
+
+def _key_text(key_columns: Sequence[sa.ColumnElement]) -> sa.ColumnElement:
+    """``key1 || '|' || key2 ...`` with NULL parts as empty strings."""
+    parts: list[sa.ColumnElement] = []
+    for j, c in enumerate(key_columns):
+        if j:
+            parts.append(sa.literal("|", sa.String()))
+        parts.append(sa.func.coalesce(sa.cast(c, sa.String()), sa.literal("", sa.String())))
+    text = parts[0]
+    for part in parts[1:]:
+        text = text.concat(part)
+    return text
 
 
 def values_query(rel: sa.FromClause, segment_key: str, plans: Sequence[MetricPlan],
@@ -676,9 +702,10 @@ def values_query(rel: sa.FromClause, segment_key: str, plans: Sequence[MetricPla
 
     Returns columns ``seg``, ``h`` (the row's hash, when ``hashed`` is given) and
     ``v<i>``: the usable value before the transform (NULL otherwise). With
-    ``thresholds`` (pairs of an 8-digit hex threshold and the raw segment values it
-    applies to), a row of a listed segment is returned only when its hash is below
-    its segment's threshold; rows of other segments are all returned (none with
+    ``thresholds`` (pairs of a bound and the raw segment values it applies to: an
+    8-digit hex threshold for ``md5`` hashes, passed when below; a 64-bit integer for
+    ``int64`` hashes, passed when at most), a row of a listed segment is returned
+    only when its hash passes its segment's bound; rows of other segments are all returned (none with
     ``only_listed``). Rows with a NULL segment never are. A threshold of ``"g"``
     sorts after every hex digest: all rows of its segments pass.
     """
@@ -692,11 +719,14 @@ def values_query(rel: sa.FromClause, segment_key: str, plans: Sequence[MetricPla
     if thresholds:
         assert hashed is not None
         listed = [v for _, segs in thresholds for v in segs]
-        limit = sa.case(*[(seg.in_(list(segs)), sa.literal(t, sa.String())) for t, segs in thresholds])
+        integer = isinstance(thresholds[0][0], int)
+        kind = sa.BigInteger() if integer else sa.String()
+        limit = sa.case(*[(seg.in_(list(segs)), sa.literal(t, kind)) for t, segs in thresholds])
+        passes = hashed <= limit if integer else hashed < limit
         if only_listed:
-            conds.append(hashed < limit)
+            conds.append(passes)
         else:
-            conds.append(sa.or_(seg.not_in(listed), hashed < limit))
+            conds.append(sa.or_(seg.not_in(listed), passes))
     return sa.select(*cols).where(*conds)
 
 

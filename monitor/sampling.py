@@ -10,8 +10,13 @@ rule, configured by ``sampling`` (``mode``, ``cap``, ``seed``):
 ``sample``
     Per segment, at most ``cap`` rows: a segment with at most ``cap`` rows in the
     period gives all of them; a larger one gives the ``cap`` rows with the smallest
-    hash ``md5(key || ':' || seed)``, where ``key`` is the row's primary key (its
-    columns joined by ``|``) or, without one, its time and segment values.
+    hash of the row's key and the seed, where ``key`` is the row's primary key (its
+    columns joined by ``|``) or, without one, its time and segment values. The hash
+    is ``md5(key || ':' || seed)`` on every engine but PostgreSQL 11 and newer, where
+    it is the server's own 64-bit hash (``hashint8extended(key, seed)`` for one
+    integer key column, else ``hashtextextended(key, seed)``): the functions behind
+    hash partitioning, which PostgreSQL keeps stable across versions, and about five
+    times cheaper per row than ``md5`` (1.4 s against 0.3 s over 2,000,000 rows here).
 ``auto`` (the default)
     ``full`` while every segment has at most ``cap`` rows in the period, else
     ``sample``.
@@ -21,9 +26,9 @@ was sampled, the metric's ``sample_size`` is the number of its values and the ou
 says the rank test and the value checks are sample-based.
 
 Reproducible: the same rows, seed and cap give the same sample on every run, and on
-every engine where the key prints the same (integer keys do: PostgreSQL, MySQL,
+every engine using ``md5`` where the key prints the same (integer keys do: MySQL,
 MariaDB, DuckDB and SQLite all give the same sample; timestamps print differently per
-engine). The hash is a uniform pseudo-random number unrelated to the values, so each
+engine). PostgreSQL 11+ gives its own, equally reproducible, sample. The hash is a uniform pseudo-random number unrelated to the values, so each
 segment's sample is a simple random sample of its rows (sampling within strata, as
 in Cochran 1977, ch. 5); a test on it is a valid test of the same hypothesis, with
 less power than one on all rows.
@@ -51,6 +56,10 @@ import numpy as np
 HASH_SPACE = 2**32
 #: A threshold above every lowercase hex digest: all rows of its segments pass.
 EVERY_ROW = "g"
+#: Hash kinds: ``md5`` (lowercase hex text, row passes when ``hash < bound``) and
+#: ``int64`` (a signed 64-bit hash, row passes when ``hash <= bound``).
+HASH_KINDS = ("md5", "int64")
+_INT64_MIN, _INT64_MAX = -(2**63), 2**63 - 1
 
 
 @dataclass(frozen=True)
@@ -108,24 +117,40 @@ def hex_threshold(p: float) -> str | None:
     return f"{t:08x}"
 
 
+def int64_bound(p: float) -> int | None:
+    """The largest signed 64-bit hash that passes for fraction ``p`` (None: every row).
+
+    The same 32-bit resolution as :func:`hex_threshold`: a hash passes when its top
+    32 bits, read as unsigned after adding 2^63, are below ``ceil(p 2^32)``.
+    """
+    t = math.ceil(p * HASH_SPACE)
+    if t >= HASH_SPACE:
+        return None
+    return _INT64_MIN + t * 2**32 - 1
+
+
 def thresholds(plan: SamplePlan, rows: Mapping[str, int], raw: Mapping[str, Sequence[Any]],
                boost: Mapping[str, int] | None = None,
-               only: Iterable[str] | None = None) -> list[tuple[str, list[Any]]]:
-    """Group the sampled segments by hex threshold: ``[(threshold, raw values), ...]``.
+               only: Iterable[str] | None = None, kind: str = "md5") -> list[tuple[Any, list[Any]]]:
+    """Group the sampled segments by bound: ``[(bound, raw values), ...]``.
 
-    A segment whose fraction reaches 1 is left out (the values query returns the rows
-    of unlisted segments whole), or, when ``only`` names the segments to read again,
-    listed with :data:`EVERY_ROW`.
+    Bounds are hex thresholds for ``kind="md5"``, signed 64-bit bounds for
+    ``"int64"``. A segment whose fraction reaches 1 is left out (the values query
+    returns the rows of unlisted segments whole), or, when ``only`` names the
+    segments to read again, listed with :data:`EVERY_ROW` (md5) or the largest 64-bit
+    value (int64).
     """
     boost = boost or {}
     wanted = plan.sampled if only is None else frozenset(only) & plan.sampled
-    groups: dict[str, list[Any]] = {}
+    bound = int64_bound if kind == "int64" else hex_threshold
+    every = _INT64_MAX if kind == "int64" else EVERY_ROW
+    groups: dict[Any, list[Any]] = {}
     for label in sorted(wanted):
-        t = hex_threshold(fetch_fraction(rows[label], plan.cap, boost.get(label, 0)))
+        t = bound(fetch_fraction(rows[label], plan.cap, boost.get(label, 0)))
         if t is None:
             if only is None:
                 continue  # unlisted segments are read whole anyway
-            t = EVERY_ROW
+            t = every
         groups.setdefault(t, []).extend(raw[label])
     return sorted(groups.items())
 

@@ -345,8 +345,9 @@ class Source:
             labels, _, cols = _fetch_columns(conn, stmt, traits, len(plans), hashed=False, raw=agg.raw)
             return _split(_positions(labels, agg.labels), cols, plans)
         hashed = pushdown.hash_expr(self._sample_key(rel), plan.seed, traits)
+        kind = pushdown.hash_kind(traits)
         stmt = pushdown.values_query(rel, seg_key, plans, where, traits, hashed=hashed,
-                                     thresholds=thresholds(plan, agg.rows, agg.raw))
+                                     thresholds=thresholds(plan, agg.rows, agg.raw, kind=kind))
         labels, hashes, cols = _fetch_columns(conn, stmt, traits, len(plans), hashed=True, raw=agg.raw)
         groups = {lab: (hashes[m], [c[m] for c in cols])
                   for lab, m in _positions(labels, agg.labels).items()}
@@ -360,7 +361,7 @@ class Source:
             for lab in short:
                 boost[lab] = boost.get(lab, 0) + 1
             log.debug("sample came up short for %s; reading again", ", ".join(short))
-            found = thresholds(plan, agg.rows, agg.raw, boost, only=short)
+            found = thresholds(plan, agg.rows, agg.raw, boost, only=short, kind=kind)
             stmt = pushdown.values_query(rel, seg_key, plans, where, traits, hashed=hashed,
                                          thresholds=found, only_listed=True)
             labels2, hashes2, cols2 = _fetch_columns(conn, stmt, traits, len(plans), hashed=True, raw=agg.raw)
@@ -454,7 +455,8 @@ def _fetch_columns(conn: sa.Connection, stmt: sa.Select, traits: EngineTraits, w
         part = [np.fromiter((codes.setdefault(str(v), len(codes)) for v in cols[0]), dtype=np.int32,
                             count=len(cols[0]))]
         if hashed:
-            part.append(np.array(cols[1], dtype="S32"))
+            text = not cols[1] or not isinstance(cols[1][0], int)
+            part.append(np.array(cols[1], dtype="S32" if text else np.int64))
         part += [np.array(c, dtype=float) for c in cols[1 + hashed:]]
         parts.append(part)
         del cols
@@ -515,13 +517,14 @@ def _copy_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed: b
     if len(cols) - 1 - hashed != width:
         raise AssertionError("values query columns do not match the metrics")
     compiled = sa.select(*cols).compile(dialect=conn.dialect, compile_kwargs={"render_postcompile": True})
+    text_hash = hashed and not isinstance(sub.c.h.type, sa.BigInteger)
     fields = [("nf", ">i2"), ("l_g", ">i4"), ("g", ">i4")]
     if hashed:
-        fields += [("l_h", ">i4"), ("h", "S32")]
+        fields += [("l_h", ">i4"), ("h", "S32" if text_hash else ">i8")]
     for j in range(width):
         fields += [(f"l{j}", ">i4"), (f"v{j}", ">f8")]
     dtype = np.dtype(fields)
-    expect = {"nf": len(cols), "l_g": 4, "l_h": 32, **{f"l{j}": 8 for j in range(width)}}
+    expect = {"nf": len(cols), "l_g": 4, "l_h": 32 if text_hash else 8, **{f"l{j}": 8 for j in range(width)}}
     parts: list[np.ndarray] = []
     buf = bytearray()
     pending: list[bytes] = []  # libpq hands out one row per chunk: parse in blocks
@@ -566,7 +569,7 @@ def _copy_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed: b
     if rows.size and (rows["g"] < 0).any():
         raise SourceError("the values query returned a segment the aggregate query did not")
     labels = np.array(names, dtype=object)[rows["g"]] if rows.size else np.empty(0, dtype=object)
-    hashes = rows["h"].copy() if hashed else np.empty(0, dtype="S32")
+    hashes = rows["h"].astype("S32" if text_hash else np.int64) if hashed else np.empty(0, dtype="S32")
     values = [rows[f"v{j}"].astype(float) for j in range(width)]
     return labels, hashes, values
 

@@ -158,7 +158,7 @@ IN_PROCESS = textwrap.dedent("""
 
 AGGREGATE = textwrap.dedent("""
     import sys, time
-    from monitor import pushdown
+    from monitor import pushdown, source
     from monitor.config import load_config
     from monitor.periods import parse_period
     from monitor.source import Source
@@ -169,9 +169,13 @@ AGGREGATE = textwrap.dedent("""
     traits = pushdown.EngineTraits.of(src.engine.dialect)
     plans, _ = pushdown.plan_metrics(rel, cfg.metrics, traits)
     where = src.window_clause(period)
-    with src.engine.connect() as conn:
+    with src.engine.connect() as conn, conn.begin():
+        source._tune_session(conn, traits)  # the session settings segwatch uses (PostgreSQL: no JIT)
         shifts = src._shifts(conn, rel, plans, where, traits)
-        stmt = pushdown.aggregate_query(rel, cfg.source.segment_column, plans, where, shifts, traits)
+        if pushdown.direct_possible(plans, traits):  # the form segwatch sends first
+            stmt = pushdown.direct_query(rel, cfg.source.segment_column, plans, where, shifts)
+        else:
+            stmt = pushdown.aggregate_query(rel, cfg.source.segment_column, plans, where, shifts, traits)
         t0 = time.perf_counter()
         rows = conn.execute(stmt).all()
         print(time.perf_counter() - t0, len(rows))

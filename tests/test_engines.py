@@ -406,6 +406,21 @@ def _md5_sample(rows: list[dict], cap: int, seed: int) -> dict[str, set[int]]:
     return {s: {t for _, t in sorted(v)[:cap]} for s, v in by_seg.items()}
 
 
+def _server_hash_sample(target: Target, table: str, rows: list[dict], cap: int, seed: int
+                        ) -> dict[str, set[int]]:
+    """The rule of monitor.sampling with PostgreSQL's hashint8extended, evaluated by the
+    server for every row in one plain query and selected here."""
+    # reference: PostgreSQL's documented hashint8extended(bigint, seed), the cap smallest per segment
+    with target.admin.connect() as conn:
+        hashes = dict(conn.exec_driver_sql(f"SELECT id, hashint8extended(id, {seed}) FROM {table}").all())
+    by_seg: dict[str, list[tuple[int, int]]] = {}
+    for r in rows:
+        if r["seg"] is None or not (MONDAY <= r["ts"] < MONDAY + timedelta(days=7)):
+            continue
+        by_seg.setdefault(r["seg"], []).append((hashes[r["id"]], r["tag"]))
+    return {s: {t for _, t in sorted(v)[:cap]} for s, v in by_seg.items()}
+
+
 def test_seeded_sample_is_the_smallest_hashes_on_every_engine(target, tmp_path):
     rows = parity_rows(target.name)
     table = create_table(target, f"sampled_{uuid.uuid4().hex[:8]}", rows)
@@ -416,12 +431,52 @@ def test_seeded_sample_is_the_smallest_hashes_on_every_engine(target, tmp_path):
         data = src.fetch(PERIOD)
     finally:
         src.dispose()
-    expected = _md5_sample(rows, 20, 11)
+    if target.name == "postgresql":  # PostgreSQL 11+ samples with its own 64-bit hash
+        expected = _server_hash_sample(target, table, rows, 20, 11)
+    else:
+        expected = _md5_sample(rows, 20, 11)
     (metric,) = data.metrics
     assert data.sampled and metric.sample_size == 80
     for s in metric.segments:
         assert set(s.values.astype(int)) == expected[s.segment]
         assert s.moments.n > 20  # the moments still come from all rows
+
+
+def test_short_sample_read_again_and_both_reads_agree(target, tmp_path, monkeypatch):
+    """The first read fetches far too few rows; the boosted second read repairs it. On
+    PostgreSQL the values come by binary COPY, and row by row when COPY is not
+    available; both give the same sample."""
+    from monitor import sampling as sampling_mod
+    from monitor import source as source_mod
+
+    real = sampling_mod.fetch_fraction
+    monkeypatch.setattr(sampling_mod, "fetch_fraction",
+                        lambda n, cap, boost=0: real(n, cap, boost) if boost else 0.01)
+    rows = parity_rows(target.name)
+    table = create_table(target, f"short_{uuid.uuid4().hex[:8]}", rows)
+    cfg = job_config(target, table, tmp_path, metrics=[{"column": "tag", "test": "kruskal"}, {"column": "x"}],
+                     sampling={"mode": "sample", "cap": 15, "seed": 5})
+    if target.name == "postgresql":
+        expected = _server_hash_sample(target, table, rows, 15, 5)
+    else:
+        expected = _md5_sample(rows, 15, 5)
+    by_tag = {r["tag"]: r["x"] for r in rows}
+    for bulk in ((True, False) if target.name == "postgresql" else (True,)):
+        if not bulk:
+            monkeypatch.setattr(source_mod, "_copy_possible", lambda conn, raw: False)
+        src = Source(cfg)
+        try:
+            data = src.fetch(PERIOD)
+        finally:
+            src.dispose()
+        tag = data.metrics[0]
+        for seg in tag.segments:
+            assert set(seg.values.astype(int)) == expected[seg.segment], (bulk, seg.segment)
+        # the other metric's values are its usable values among the same rows
+        for seg, xs in zip(tag.segments, data.metrics[1].segments):
+            want = sorted(v for t in expected[seg.segment]
+                          if isinstance(v := by_tag[t], float) and math.isfinite(v))
+            assert sorted(xs.values.tolist()) == want, (bulk, seg.segment)
 
 
 # ---------------------------------------------------------------- NIST StRD

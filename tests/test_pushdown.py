@@ -233,6 +233,19 @@ def test_fetch_fraction_leaves_room_for_the_cap():
     assert again == [(sampling.EVERY_ROW, ["B"])]  # a re-read lists it explicitly
 
 
+def test_int64_bounds_pass_the_same_fraction_as_hex_thresholds():
+    # a signed 64-bit hash h passes when (h + 2^63) >> 32 < ceil(p 2^32): the hex rule's 32 bits
+    assert sampling.int64_bound(1.0) is None
+    assert sampling.int64_bound(0.5) == -1  # exactly the lower half of the 64-bit range
+    assert sampling.int64_bound(2.0**-32) == -(2**63) + 2**32 - 1
+    for p in (0.01, 0.3, 0.77):
+        b = sampling.int64_bound(p)
+        assert ((b + 2**63) >> 32) + 1 == int(sampling.hex_threshold(p), 16)
+    plan = sampling.plan_sample("sample", 10, 0, {"A": 1000, "B": 12})
+    assert sampling.thresholds(plan, {"A": 1000, "B": 12}, {"A": ["A"], "B": ["B"]}, only=["B"],
+                               kind="int64") == [(2**63 - 1, ["B"])]
+
+
 def test_smallest_ignores_row_order():
     h = np.array(["b", "a", "c", "a"])
     v = np.array([2.0, 5.0, 1.0, 4.0])
