@@ -525,13 +525,16 @@ def _copy_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed: b
         fields += [(f"l{j}", ">i4"), (f"v{j}", ">f8")]
     dtype = np.dtype(fields)
     expect = {"nf": len(cols), "l_g": 4, "l_h": 32 if text_hash else 8, **{f"l{j}": 8 for j in range(width)}}
-    parts: list[np.ndarray] = []
+    names_out = ["g", *(["h"] if hashed else []), *[f"v{j}" for j in range(width)]]
+    native = {"g": np.int32, "h": "S32" if text_hash else np.int64, **{f"v{j}": np.float64 for j in range(width)}}
+    parts: dict[str, list[np.ndarray]] = {name: [] for name in names_out}
     buf = bytearray()
     pending: list[bytes] = []  # libpq hands out one row per chunk: parse in blocks
     size = 0
     start = True
 
     def parse() -> None:
+        # each block becomes native column arrays at once, so only one block's raw bytes live
         nonlocal start, size
         buf.extend(b"".join(pending))
         pending.clear()
@@ -545,9 +548,16 @@ def _copy_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed: b
             del buf[:19 + ext]
             start = False
         whole = len(buf) // dtype.itemsize * dtype.itemsize
-        if whole:
-            parts.append(np.frombuffer(bytes(buf[:whole]), dtype=dtype))
-            del buf[:whole]
+        if not whole:
+            return
+        block = np.frombuffer(memoryview(buf)[:whole], dtype=dtype)
+        for name, size_ in expect.items():
+            if name in dtype.names and not np.all(block[name] == size_):
+                raise SourceError("PostgreSQL COPY returned rows of an unexpected layout")
+        for name in names_out:
+            parts[name].append(block[name].astype(native[name]))
+        del block
+        del buf[:whole]
 
     cursor = conn.connection.driver_connection.cursor()
     try:
@@ -562,15 +572,17 @@ def _copy_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed: b
         cursor.close()
     if bytes(buf) not in (b"\xff\xff", b""):
         raise SourceError("PostgreSQL COPY returned rows of an unexpected layout")
-    rows = np.concatenate(parts) if parts else np.empty(0, dtype=dtype)
-    for name, size in expect.items():
-        if name in dtype.names and rows.size and not np.all(rows[name] == size):
-            raise SourceError("PostgreSQL COPY returned rows of an unexpected layout")
-    if rows.size and (rows["g"] < 0).any():
+    columns = {}
+    for name in names_out:
+        pieces = parts.pop(name)
+        columns[name] = np.concatenate(pieces) if pieces else np.empty(0, dtype=native[name])
+        del pieces
+    g = columns["g"]
+    if g.size and (g < 0).any():
         raise SourceError("the values query returned a segment the aggregate query did not")
-    labels = np.array(names, dtype=object)[rows["g"]] if rows.size else np.empty(0, dtype=object)
-    hashes = rows["h"].astype("S32" if text_hash else np.int64) if hashed else np.empty(0, dtype="S32")
-    values = [rows[f"v{j}"].astype(float) for j in range(width)]
+    labels = np.array(names, dtype=object)[g]
+    hashes = columns["h"] if hashed else np.empty(0, dtype="S32")
+    values = [columns[f"v{j}"] for j in range(width)]
     return labels, hashes, values
 
 
