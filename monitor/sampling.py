@@ -163,5 +163,9 @@ def smallest(hashes: np.ndarray, columns: Sequence[np.ndarray], cap: int) -> np.
     """
     if len(hashes) <= cap:
         return np.arange(len(hashes))
-    order = np.lexsort([*reversed([np.asarray(c, dtype=float) for c in columns]), np.asarray(hashes)])
+    h = np.asarray(hashes)
+    order = np.argsort(h, kind="stable")
+    if h[order[cap - 1]] != h[order[cap]]:  # no tie across the cut: the set is settled by the hashes
+        return np.sort(order[:cap])
+    order = np.lexsort([*reversed([np.asarray(c, dtype=float) for c in columns]), h])
     return np.sort(order[:cap])

@@ -254,3 +254,15 @@ def test_smallest_ignores_row_order():
     rev = sampling.smallest(h[::-1], [v[::-1]], 2)
     assert sorted(v[::-1][rev]) == [4.0, 5.0]
     assert list(sampling.smallest(h, [v], 10)) == [0, 1, 2, 3]
+
+
+def test_smallest_breaks_ties_across_the_cut_by_the_values():
+    rng = np.random.default_rng(3)
+    for _ in range(200):
+        n = int(rng.integers(2, 40))
+        h = rng.integers(0, 6, n)  # many ties
+        v = rng.normal(size=n)
+        cap = int(rng.integers(1, n))
+        # reference: a plain sort of (hash, value) pairs in Python
+        want = sorted(sorted(range(n), key=lambda i: (h[i], v[i]))[:cap])
+        assert list(sampling.smallest(h, [v], cap)) == want
