@@ -10,6 +10,15 @@ returns, per segment and for every metric, what the comparison needs from the ro
 * the shifted power sums ``S_p = sum((v - k)^p)``, ``p = 1..4``, with one shift ``k``
   per metric taken near the data by a cheap probe (:func:`probe_query`).
 
+That query tests every value row by row (``CASE``). Where no value can be text and no
+metric has a transform, :func:`direct_query` is sent first: the same sums as plain
+aggregates over the table, which engines run in parallel and at the speed of a plain
+sum; it is right exactly when every value is finite, which :func:`direct_clean` checks
+on its result (a NaN or infinity makes a minimum, maximum or sum non-finite), and the
+row-by-row query runs only when it is not. :func:`ill_shifted` finds metrics whose one
+shift lies too far from some segment's data; they are summed again with one shift per
+segment.
+
 :func:`read_aggregate` turns the rows into per-segment
 :class:`~monitor.stats.summary.Moments` with
 :meth:`~monitor.stats.summary.Moments.from_shifted_sums` (exact rational conversion).
