@@ -23,10 +23,8 @@ path is deleted and rebuilt, never appended to.
 
 from __future__ import annotations
 
-import argparse
 import logging
 import os
-import sqlite3
 import sys
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -35,6 +33,9 @@ from pathlib import Path
 from types import MappingProxyType
 
 import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))  # the sibling helper, however this file is loaded
+import _sqlite_sample  # noqa: E402
 
 logger = logging.getLogger(__name__)
 
@@ -383,53 +384,18 @@ def build(path: str | os.PathLike[str] = DEFAULT_OUT, seed: int = DEFAULT_SEED) 
     """
     out, seed = _check_args(path, seed)
     rows = _generate(seed)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    partial = out.with_name(out.stem + ".partial" + (out.suffix or ".sqlite"))
-    for leftover in (partial, Path(f"{partial}-journal")):
-        leftover.unlink(missing_ok=True)
-    try:
-        con = sqlite3.connect(partial, isolation_level=None)
-        try:
-            con.execute("BEGIN")
-            con.execute(_SCHEMA)
-            con.executemany(
-                f"INSERT INTO shipments ({', '.join(_COLUMNS)}) VALUES ({', '.join('?' * len(_COLUMNS))})",
-                rows,
-            )
-            con.execute("CREATE INDEX shipments_shipped_at ON shipments (shipped_at)")
-            con.execute("COMMIT")
-        finally:
-            con.close()
-        for suffix in ("-wal", "-shm", "-journal"):
-            Path(f"{out}{suffix}").unlink(missing_ok=True)
-        os.replace(partial, out)
-    except BaseException:
-        partial.unlink(missing_ok=True)
-        raise
+    _sqlite_sample.write_table(out, _SCHEMA, "shipments", _COLUMNS, rows,
+                               "CREATE INDEX shipments_shipped_at ON shipments (shipped_at)")
     logger.info("wrote %s rows to %s (seed %s)", len(rows), out, seed)
     return out
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Command line: build the demo database; returns the exit code (0 ok, 2 bad arguments)."""
-    parser = argparse.ArgumentParser(
-        prog="depots.py",
-        description="Build segwatch's demo database of parcel depots.",
-        epilog="example: python sample_db/depots.py --out sample_db/depots.sqlite --seed 20260105",
+    return _sqlite_sample.run_cli(
+        argv, prog="depots.py", description="Build segwatch's demo database of parcel depots.", example_seed=20260105,
+        default_out=DEFAULT_OUT, default_seed=DEFAULT_SEED, build=build, table="shipments", noun="shipments",
     )
-    parser.add_argument("--out", default=str(DEFAULT_OUT), help="SQLite file to write (default: %(default)s)")
-    parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="random seed (default: %(default)s)")
-    args = parser.parse_args(argv)
-    try:
-        out = build(args.out, seed=args.seed)
-    except ValueError as exc:
-        print(f"Error: {exc}", file=sys.stderr)
-        return 2
-    with sqlite3.connect(out) as con:
-        (count,) = con.execute("SELECT COUNT(*) FROM shipments").fetchone()
-    con.close()
-    print(f"wrote {count} shipments to {out}")
-    return 0
 
 
 if __name__ == "__main__":

@@ -29,10 +29,8 @@ is deleted and rebuilt, never appended to.
 
 from __future__ import annotations
 
-import argparse
 import logging
 import os
-import sqlite3
 import sys
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -41,6 +39,9 @@ from pathlib import Path
 from types import MappingProxyType
 
 import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))  # the sibling helper, however this file is loaded
+import _sqlite_sample  # noqa: E402
 
 logger = logging.getLogger(__name__)
 
@@ -302,54 +303,18 @@ def build(path: str | os.PathLike[str] = DEFAULT_OUT, seed: int = DEFAULT_SEED) 
     """
     out, seed = _check_args(path, seed)
     rows = _generate(seed)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    partial = out.with_name(out.stem + ".partial" + (out.suffix or ".sqlite"))
-    for leftover in (partial, Path(f"{partial}-journal")):
-        leftover.unlink(missing_ok=True)
-    try:
-        con = sqlite3.connect(partial, isolation_level=None)
-        try:
-            con.execute("BEGIN")
-            con.execute(_SCHEMA)
-            con.executemany(
-                f"INSERT INTO household_months ({', '.join(_COLUMNS)}) "
-                f"VALUES ({', '.join('?' * len(_COLUMNS))})",
-                rows,
-            )
-            con.execute("CREATE INDEX household_months_bill_date ON household_months (bill_date)")
-            con.execute("COMMIT")
-        finally:
-            con.close()
-        for suffix in ("-wal", "-shm", "-journal"):
-            Path(f"{out}{suffix}").unlink(missing_ok=True)
-        os.replace(partial, out)
-    except BaseException:
-        partial.unlink(missing_ok=True)
-        raise
+    _sqlite_sample.write_table(out, _SCHEMA, "household_months", _COLUMNS, rows,
+                               "CREATE INDEX household_months_bill_date ON household_months (bill_date)")
     logger.info("wrote %s rows to %s (seed %s)", len(rows), out, seed)
     return out
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Command line: build the demo database; returns the exit code (0 ok, 2 bad arguments)."""
-    parser = argparse.ArgumentParser(
-        prog="plans.py",
-        description="Build segwatch's demo database of households on a utility's plan tiers.",
-        epilog="example: python sample_db/plans.py --out sample_db/plans.sqlite --seed 20250101",
+    return _sqlite_sample.run_cli(
+        argv, prog="plans.py", description="Build segwatch's demo database of households on a utility's plan tiers.", example_seed=20250101,
+        default_out=DEFAULT_OUT, default_seed=DEFAULT_SEED, build=build, table="household_months", noun="household-months",
     )
-    parser.add_argument("--out", default=str(DEFAULT_OUT), help="SQLite file to write (default: %(default)s)")
-    parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="random seed (default: %(default)s)")
-    args = parser.parse_args(argv)
-    try:
-        out = build(args.out, seed=args.seed)
-    except ValueError as exc:
-        print(f"Error: {exc}", file=sys.stderr)
-        return 2
-    with sqlite3.connect(out) as con:
-        (count,) = con.execute("SELECT COUNT(*) FROM household_months").fetchone()
-    con.close()
-    print(f"wrote {count} household-months to {out}")
-    return 0
 
 
 if __name__ == "__main__":
