@@ -237,6 +237,21 @@ class TestChooseMethod:
             "(beyond +/-2.0)."
         )
 
+    def test_welch_not_kruskal_when_skewed_small_segments_also_differ_in_spread(self):
+        skewed = np.array([1.0] * 10 + [2.0, 30.0])
+        groups = _summaries([skewed, np.arange(40.0)])
+        choice = choose_method(groups, None, _checks(bf_p=0.003), labels=["Dock", "Gate"])
+        assert choice.method == "welch"
+        assert choice.reason.startswith("Welch's ANOVA: segment 'Dock' has only 12 records (under 30) and skewness")
+        assert "but the spreads differ (Brown-Forsythe p 0.003 < 0.05)" in choice.reason
+        # the same with the normality branch
+        groups = _summaries([np.arange(12.0), np.arange(40.0)])
+        choice = choose_method(groups, None, _checks(normality_p=0.0012, bf_p=0.003))
+        assert choice.method == "welch" and "normality is rejected" in choice.reason
+        # an sd ratio alone does not veto the rank test (too noisy in small skewed segments)
+        choice = choose_method(groups, None, _checks(normality_p=0.0012, sd=3.5))
+        assert choice.method == "kruskal"
+
     def test_welch_when_spreads_differ(self):
         groups = _summaries([np.arange(40.0), np.arange(40.0) * 3])
         choice = choose_method(groups, None, _checks(bf_p=0.0021, sd=3.1))
