@@ -80,20 +80,61 @@ def make_engine(url: str, *, read_only: bool = False) -> Engine:
     if url.startswith("duckdb") and read_only:
         kwargs["connect_args"] = {"read_only": True}
     try:
+        if _duckdb_file(url):
+            # DuckDB runs inside segwatch's process: a connection returned to a pool would
+            # keep the database open and its buffers (up to the memory limit) in memory
+            # through the statistics; without a pool they are freed when segwatch's
+            # connection closes (opening a file again costs milliseconds)
+            kwargs["poolclass"] = sa.pool.NullPool
         engine = sa.create_engine(url, **kwargs)
     except (SQLAlchemyError, ImportError, ValueError) as exc:
         raise SourceError(f"cannot open database URL {redact(url)}: {one_line(exc)}") from exc
     if engine.dialect.name == "sqlite":
         sa.event.listen(engine, "connect", _on_sqlite_connect)
     elif engine.dialect.name == "duckdb":
-        own_limit = "memory_limit" not in engine.url.query
+        own_limit = not {"memory_limit", "max_memory"} & set(engine.url.query)
         sa.event.listen(engine, "connect", lambda conn, rec: _on_duckdb_connect(conn, own_limit))
     return engine
 
 
-#: DuckDB runs inside segwatch's process; its memory limit unless the URL sets one
-#: (``duckdb:///file.duckdb?memory_limit=2GB``).
-DUCKDB_MEMORY_LIMIT = "256MB"
+def _duckdb_file(url: str) -> bool:
+    """True for a DuckDB database file (not ``:memory:``, not a MotherDuck ``md:`` database)."""
+    if not url.startswith("duckdb"):
+        return False
+    database = sa.engine.make_url(url).database or ""
+    return database not in ("", ":memory:") and not database.startswith(("md:", "motherduck:", ":memory:"))
+
+
+#: DuckDB's memory limit per worker thread (``threads``, the number of cores unless the
+#: URL sets it), and at least :data:`DUCKDB_MEMORY_MIN`, unless the URL sets a limit
+#: (``duckdb:///file.duckdb?memory_limit=2GB``). DuckDB's buffer pool keeps the blocks
+#: it has read up to the limit, so the limit is what DuckDB adds to segwatch's memory;
+#: but each thread scanning a table pins its current blocks of every column read (about
+#: 14 MB per thread for 23 columns of doubles here), and a query that needs more than
+#: the limit fails with DuckDB's "Out of Memory Error".
+DUCKDB_MEMORY_PER_THREAD_MB = 32
+DUCKDB_MEMORY_MIN_MB = 64
+
+
+#: Per thread and per column read, what a scan may pin (measured ~0.6 MB; with margin).
+DUCKDB_MEMORY_PER_COLUMN_MB = 1.5
+
+
+def duckdb_memory_limit(threads: int, columns: int = 0) -> str:
+    """segwatch's default DuckDB ``memory_limit`` for ``threads`` worker threads reading
+    ``columns`` columns: per thread the larger of :data:`DUCKDB_MEMORY_PER_THREAD_MB` and
+    :data:`DUCKDB_MEMORY_PER_COLUMN_MB` per column, and at least :data:`DUCKDB_MEMORY_MIN_MB`."""
+    per_thread = max(DUCKDB_MEMORY_PER_THREAD_MB, math.ceil(DUCKDB_MEMORY_PER_COLUMN_MB * max(0, int(columns))))
+    return f"{max(DUCKDB_MEMORY_MIN_MB, per_thread * max(1, int(threads)))}MB"
+
+
+def fit_duckdb_memory(conn: sa.Connection, columns: int) -> None:
+    """Raise segwatch's own DuckDB memory limit for a query reading ``columns`` columns
+    (wide jobs pin more per scanning thread); a limit set in the URL is left alone."""
+    if conn.dialect.name != "duckdb" or {"memory_limit", "max_memory"} & set(conn.engine.url.query):
+        return
+    threads = conn.exec_driver_sql("SELECT current_setting('threads')").scalar()
+    conn.exec_driver_sql(f"SET memory_limit = '{duckdb_memory_limit(threads, columns)}'")
 
 
 def _on_duckdb_connect(dbapi_conn: Any, own_limit: bool) -> None:
@@ -102,7 +143,8 @@ def _on_duckdb_connect(dbapi_conn: Any, own_limit: bool) -> None:
     if own_limit:
         # its buffer pool would otherwise grow with the rows scanned (to 80% of RAM);
         # one aggregate row per segment needs little of it
-        dbapi_conn.execute(f"SET memory_limit = '{DUCKDB_MEMORY_LIMIT}'")
+        threads = dbapi_conn.execute("SELECT current_setting('threads')").fetchone()[0]
+        dbapi_conn.execute(f"SET memory_limit = '{duckdb_memory_limit(threads)}'")
 
 
 def _on_sqlite_connect(dbapi_conn: Any, _record: Any) -> None:

@@ -661,6 +661,8 @@ def hash_kind(traits: EngineTraits) -> str:
     """``int64`` where the engine has a fast seeded 64-bit hash (PostgreSQL 11+), else ``md5``."""
     if traits.name == "postgresql" and traits.version >= (11,):
         return "int64"
+    if traits.name == "duckdb":
+        return "md5_60"
     return "md5"
 
 
@@ -672,8 +674,9 @@ def hash_expr(key_columns: Sequence[sa.ColumnElement], seed: int, traits: Engine
     SQLite gets the Python function that :mod:`monitor.db` registers on segwatch's
     connections. ``int64`` (PostgreSQL 11+, :func:`hash_kind`):
     ``hashint8extended(key, seed)`` for one integer key column, else
-    ``hashtextextended(key1|key2|..., seed)``. A NULL key part counts as an empty
-    string (as 0 for the integer hash).
+    ``hashtextextended(key1|key2|..., seed)``. ``md5_60`` (DuckDB): the first 15 hex
+    digits of the same MD5 as a ``BIGINT``, which orders rows as the hex digest does.
+    A NULL key part counts as an empty string (as 0 for the integer hash).
     """
     if hash_kind(traits) == "int64":
         seed_lit = sa.literal(int(seed), sa.BigInteger())
@@ -682,6 +685,9 @@ def hash_expr(key_columns: Sequence[sa.ColumnElement], seed: int, traits: Engine
             return sa.func.hashint8extended(key, seed_lit, type_=sa.BigInteger())
         return sa.func.hashtextextended(_key_text(key_columns), seed_lit, type_=sa.BigInteger())
     text = _key_text(key_columns).concat(sa.literal(f":{int(seed)}", sa.String()))
+    if traits.name == "duckdb":  # md5_60: an integer column (no strings to carry), the same order
+        prefix = sa.literal("0x", sa.String()).concat(sa.func.substr(sa.func.md5(text, type_=sa.String()), 1, 15))
+        return sa.cast(prefix, sa.BigInteger())
     if traits.name == "sqlite":
         return getattr(sa.func, SQLITE_MD5)(text, type_=sa.String())
     if traits.name == "trino":

@@ -56,9 +56,11 @@ import numpy as np
 HASH_SPACE = 2**32
 #: A threshold above every lowercase hex digest: all rows of its segments pass.
 EVERY_ROW = "g"
-#: Hash kinds: ``md5`` (lowercase hex text, row passes when ``hash < bound``) and
-#: ``int64`` (a signed 64-bit hash, row passes when ``hash <= bound``).
-HASH_KINDS = ("md5", "int64")
+#: Hash kinds: ``md5`` (lowercase hex text, row passes when ``hash < bound``),
+#: ``md5_60`` (the first 15 hex digits of the same MD5 as a number: the same order, as
+#: an integer column) and ``int64`` (a signed 64-bit hash); integers pass when
+#: ``hash <= bound``.
+HASH_KINDS = ("md5", "md5_60", "int64")
 _INT64_MIN, _INT64_MAX = -(2**63), 2**63 - 1
 
 
@@ -129,6 +131,12 @@ def int64_bound(p: float) -> int | None:
     return _INT64_MIN + t * 2**32 - 1
 
 
+def md5_60_bound(p: float) -> int | None:
+    """:func:`hex_threshold` for the 60-bit MD5 prefix: the largest prefix that passes."""
+    t = hex_threshold(p)
+    return None if t is None else int(t, 16) * 2**28 - 1
+
+
 def thresholds(plan: SamplePlan, rows: Mapping[str, int], raw: Mapping[str, Sequence[Any]],
                boost: Mapping[str, int] | None = None,
                only: Iterable[str] | None = None, kind: str = "md5") -> list[tuple[Any, list[Any]]]:
@@ -142,8 +150,8 @@ def thresholds(plan: SamplePlan, rows: Mapping[str, int], raw: Mapping[str, Sequ
     """
     boost = boost or {}
     wanted = plan.sampled if only is None else frozenset(only) & plan.sampled
-    bound = int64_bound if kind == "int64" else hex_threshold
-    every = _INT64_MAX if kind == "int64" else EVERY_ROW
+    bound = {"int64": int64_bound, "md5_60": md5_60_bound}.get(kind, hex_threshold)
+    every = {"int64": _INT64_MAX, "md5_60": 2**60}.get(kind, EVERY_ROW)
     groups: dict[Any, list[Any]] = {}
     for label in sorted(wanted):
         t = bound(fetch_fraction(rows[label], plan.cap, boost.get(label, 0)))

@@ -42,10 +42,9 @@ import time
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from decimal import Decimal
-from typing import Any, Mapping, Sequence
+from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
 import numpy as np
-import pandas as pd
 import sqlalchemy as sa
 from sqlalchemy.engine import Engine
 from sqlalchemy.exc import NoSuchTableError, SQLAlchemyError
@@ -56,6 +55,7 @@ from .config import JobConfig, MetricConfig, SourceConfig
 from .db import (
     check_server_version,
     duckdb_table_names,
+    fit_duckdb_memory,
     format_version,
     make_engine,
     one_line,
@@ -68,6 +68,9 @@ from .periods import Period
 from .pushdown import Aggregate, EngineTraits, MetricPlan, Shift
 from .sampling import SamplePlan, plan_sample, smallest, thresholds
 from .stats.summary import Moments
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 __all__ = ["PeriodData", "Source", "SourceInfo", "make_engine", "summarise_frame"]
 
@@ -239,6 +242,8 @@ class Source:
             cols.append(sa.type_coerce(rel.c[m.column], sa.types.NullType()).label(f"__m{i}"))
             names.append(f"__m{i}")
         stmt = sa.select(*cols).where(self.window_clause(period))
+        import pandas as pd  # only for compute: local (a push-down run does without it)
+
         try:
             with self._connect() as conn:
                 result = conn.execute(stmt)
@@ -260,7 +265,7 @@ class Source:
                 if traits.name in _SNAPSHOT_ENGINES:
                     conn = conn.execution_options(isolation_level="REPEATABLE READ")
                 with conn.begin():
-                    _tune_session(conn, traits)
+                    _tune_session(conn, traits, len(plans) + 3)
                     shifts = self._shifts(conn, rel, plans, where, traits)
                     step = "the aggregate query"
                     agg = self._aggregate(conn, rel, plans, where, shifts, traits, period)
@@ -349,9 +354,16 @@ class Source:
         stmt = pushdown.values_query(rel, seg_key, plans, where, traits, hashed=hashed,
                                      thresholds=thresholds(plan, agg.rows, agg.raw, kind=kind))
         labels, hashes, cols = _fetch_columns(conn, stmt, traits, len(plans), hashed=True, raw=agg.raw)
-        groups = {lab: (hashes[m], [c[m] for c in cols])
-                  for lab, m in _positions(labels, agg.labels).items()}
-        del labels, hashes, cols  # the per-segment copies above are all that is kept
+        pos = _positions(labels, agg.labels)
+        del labels
+        if all(len(pos[lab]) >= min(plan.cap, agg.rows[lab]) for lab in plan.sampled):
+            # the usual case: pick the rows, then copy out one column at a time
+            keep = {lab: m[smallest(hashes[m], [c[m] for c in cols], plan.cap)] if lab in plan.sampled else m
+                    for lab, m in pos.items()}
+            del hashes, pos
+            return _split(keep, cols, plans)
+        groups = {lab: (hashes[m], [c[m] for c in cols]) for lab, m in pos.items()}
+        del hashes, cols, pos  # the per-segment copies above are all that is kept
         boost: dict[str, int] = {}
         for _ in range(SAMPLE_RETRIES + 1):
             short = [lab for lab in sorted(plan.sampled)
@@ -404,8 +416,11 @@ class Source:
         self.engine.dispose()
 
 
-def _tune_session(conn: sa.Connection, traits: EngineTraits) -> None:
+def _tune_session(conn: sa.Connection, traits: EngineTraits, columns: int = 0) -> None:
     """Per-transaction settings for segwatch's wide aggregate queries.
+
+    DuckDB: segwatch's own memory limit is raised to fit ``columns`` columns
+    (:func:`monitor.db.fit_duckdb_memory`).
 
     PostgreSQL 11+ compiles a query whose estimated cost passes ``jit_above_cost``
     with LLVM; for a query with hundreds of aggregate expressions that compilation
@@ -417,6 +432,8 @@ def _tune_session(conn: sa.Connection, traits: EngineTraits) -> None:
         version = getattr(conn.dialect, "server_version_info", None) or (0,)
         if version >= (11,):
             conn.exec_driver_sql("SET LOCAL jit = off")
+    elif traits.name == "duckdb":
+        fit_duckdb_memory(conn, columns)
 
 
 def _fetch_columns(conn: sa.Connection, stmt: sa.Select, traits: EngineTraits, width: int, *,
@@ -433,13 +450,20 @@ def _fetch_columns(conn: sa.Connection, stmt: sa.Select, traits: EngineTraits, w
     """
     if traits.name == "postgresql" and raw is not None and _copy_possible(conn, raw):
         return _copy_columns(conn, stmt, width, hashed=hashed, raw=raw)
+    if traits.name == "duckdb" and raw is not None and _numbered_possible(raw) \
+            and hasattr(conn.connection.driver_connection, "execute"):
+        return _duckdb_columns(conn, stmt, width, hashed=hashed, raw=raw)
     if traits.name == "duckdb":
         result = conn.execute(stmt)
         if hasattr(result.cursor, "fetchnumpy"):
             data = result.cursor.fetchnumpy()
             columns = [data[k] for k in result.keys()]
             labels = np.array([str(v) for v in np.asarray(columns[0], dtype=object)], dtype=object)
-            hashes = np.asarray(columns[1]).astype("S32") if hashed else np.empty(0, dtype="S32")
+            if hashed:
+                h = np.asarray(columns[1])
+                hashes = h.astype(np.int64) if h.dtype.kind in "iu" else h.astype("S32")
+            else:
+                hashes = np.empty(0, dtype="S32")
             return labels, hashes, [_floats(c) for c in columns[1 + hashed:]]
         chunks = [result.all()]
     else:
@@ -475,18 +499,22 @@ def _fetch_columns(conn: sa.Connection, stmt: sa.Select, traits: EngineTraits, w
     return labels, hashes, merged[1 + hashed:]
 
 
-#: Most segments for which the values travel by binary COPY (each returned row maps
-#: its segment to a number with one CASE branch per segment).
+#: Most segments for which the values travel as plain numbers (binary COPY on
+#: PostgreSQL, numpy on DuckDB): each returned row maps its segment to a number with
+#: one CASE branch per segment.
 COPY_MAX_SEGMENTS = 200
 #: Bytes of the COPY stream gathered before numpy parses them.
 COPY_BLOCK_BYTES = 4 << 20
 _COPY_SIGNATURE = b"PGCOPY\n\xff\r\n\x00"
 
 
+def _numbered_possible(raw: Mapping[str, Sequence[Any]]) -> bool:
+    return 0 < sum(len(v) for v in raw.values()) <= COPY_MAX_SEGMENTS
+
+
 def _copy_possible(conn: sa.Connection, raw: Mapping[str, Sequence[Any]]) -> bool:
-    n = sum(len(v) for v in raw.values())
     driver = getattr(conn.connection, "driver_connection", None)
-    return 0 < n <= COPY_MAX_SEGMENTS and hasattr(getattr(driver, "cursor", None), "__call__") \
+    return _numbered_possible(raw) and hasattr(getattr(driver, "cursor", None), "__call__") \
         and type(driver).__module__.startswith("psycopg")
 
 
@@ -502,29 +530,17 @@ def _copy_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed: b
     one structured numpy dtype instead of creating a Python object per value. Runs on
     the transaction's own connection, inside its snapshot.
     """
-    sub = stmt.subquery("segwatch_values")
-    names: list[str] = []
-    whens: dict[Any, int] = {}
-    for label in sorted(raw):
-        for value in raw[label]:
-            whens[value] = len(names)
-            names.append(label)
-    cols: list[sa.ColumnElement] = [sa.case(whens, value=sub.c.seg, else_=-1).label("g")]
-    if hashed:
-        cols.append(sub.c.h)
-    nan = sa.cast(sa.literal("NaN"), sa.Double())
-    cols += [sa.func.coalesce(sub.c[f"v{j}"], nan) for j in _value_positions(sub)]
-    if len(cols) - 1 - hashed != width:
-        raise AssertionError("values query columns do not match the metrics")
-    compiled = sa.select(*cols).compile(dialect=conn.dialect, compile_kwargs={"render_postcompile": True})
-    text_hash = hashed and not isinstance(sub.c.h.type, sa.BigInteger)
+    numbered, names = _numbered(stmt, width, hashed=hashed, raw=raw)
+    sub = numbered.selected_columns
+    compiled = numbered.compile(dialect=conn.dialect, compile_kwargs={"render_postcompile": True})
+    text_hash = hashed and not isinstance(sub.h.type, sa.BigInteger)
     fields = [("nf", ">i2"), ("l_g", ">i4"), ("g", ">i4")]
     if hashed:
         fields += [("l_h", ">i4"), ("h", "S32" if text_hash else ">i8")]
     for j in range(width):
         fields += [(f"l{j}", ">i4"), (f"v{j}", ">f8")]
     dtype = np.dtype(fields)
-    expect = {"nf": len(cols), "l_g": 4, "l_h": 32 if text_hash else 8, **{f"l{j}": 8 for j in range(width)}}
+    expect = {"nf": len(sub), "l_g": 4, "l_h": 32 if text_hash else 8, **{f"l{j}": 8 for j in range(width)}}
     names_out = ["g", *(["h"] if hashed else []), *[f"v{j}" for j in range(width)]]
     native = {"g": np.int32, "h": "S32" if text_hash else np.int64, **{f"v{j}": np.float64 for j in range(width)}}
     parts: dict[str, list[np.ndarray]] = {name: [] for name in names_out}
@@ -586,6 +602,50 @@ def _copy_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed: b
     return labels, hashes, values
 
 
+def _numbered(stmt: sa.Select, width: int, *, hashed: bool, raw: Mapping[str, Sequence[Any]]
+              ) -> tuple[sa.Select, list[str]]:
+    """The values query reshaped to plain numbers: ``g`` (the segment's number in the
+    returned list of labels), ``h`` (when hashed) and ``v<i>`` with NaN for "not usable"."""
+    sub = stmt.subquery("segwatch_values")
+    names: list[str] = []
+    whens: dict[Any, int] = {}
+    for label in sorted(raw):
+        for value in raw[label]:
+            whens[value] = len(names)
+            names.append(label)
+    cols: list[sa.ColumnElement] = [sa.case(whens, value=sub.c.seg, else_=-1).label("g")]
+    if hashed:
+        cols.append(sub.c.h)
+    nan = sa.cast(sa.literal("NaN"), sa.Double())
+    cols += [sa.func.coalesce(sub.c[f"v{j}"], nan).label(f"v{j}") for j in _value_positions(sub)]
+    if len(cols) - 1 - hashed != width:
+        raise AssertionError("values query columns do not match the metrics")
+    return sa.select(*cols), names
+
+
+def _duckdb_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed: bool,
+                    raw: Mapping[str, Sequence[Any]]) -> tuple[np.ndarray, np.ndarray, list[np.ndarray]]:
+    """The values query on DuckDB as plain numpy arrays (:func:`_numbered`: no masked
+    arrays, no segment strings; about 60 MB less at 300,000 rows x 20 metrics)."""
+    numbered, names = _numbered(stmt, width, hashed=hashed, raw=raw)
+    result = conn.execute(numbered)
+    data = result.cursor.fetchnumpy()
+    keys = list(result.keys())
+    g = np.asarray(data.pop(keys[0]), dtype=np.int64)
+    if g.size and (g < 0).any():
+        raise SourceError("the values query returned a segment the aggregate query did not")
+    labels = np.array(names, dtype=object)[g] if g.size else np.empty(0, dtype=object)
+    del g
+    if hashed:
+        h = np.asarray(data.pop(keys[1]))
+        hashes = h.astype(np.int64) if h.dtype.kind in "iu" else h.astype("S32")
+        del h
+    else:
+        hashes = np.empty(0, dtype="S32")
+    values = [np.asarray(data.pop(k), dtype=float) for k in keys[1 + hashed:]]
+    return labels, hashes, values
+
+
 def _value_positions(sub: sa.Subquery) -> list[int]:
     return [int(c.key[1:]) for c in sub.c if c.key.startswith("v") and c.key[1:].isdigit()]
 
@@ -617,9 +677,17 @@ def _usable(col: np.ndarray) -> np.ndarray:
     return col[~np.isnan(col)]
 
 
-def _split(picks: dict[str, np.ndarray], cols: list[np.ndarray], plans: Sequence[MetricPlan]
+def _split(picks: dict[str, np.ndarray], cols: list[np.ndarray | None], plans: Sequence[MetricPlan]
            ) -> dict[str, dict[int, np.ndarray]]:
-    return {lab: {p.position: _usable(c[idx]) for p, c in zip(plans, cols)} for lab, idx in picks.items()}
+    """Each segment's usable values per metric; ``cols`` is emptied column by column as it
+    is copied out, so the fetched and the split values are never all held twice."""
+    out: dict[str, dict[int, np.ndarray]] = {lab: {} for lab in picks}
+    for j, p in enumerate(plans):
+        col, cols[j] = cols[j], None
+        for lab, idx in picks.items():
+            out[lab][p.position] = _usable(col[idx])
+        del col
+    return out
 
 
 def _is_nan(v: Any) -> bool:
@@ -645,6 +713,8 @@ def summarise_frame(frame: pd.DataFrame, metrics: Sequence[MetricConfig], names:
     :meth:`Source.fetch` does) so that a NULL (``None``) and a stored NaN stay apart;
     in a float frame both read as NULL.
     """
+    import pandas as pd
+
     null_seg = int(frame["__segment"].isna().sum())
     frame = frame[frame["__segment"].notna()]
     segments_all = frame["__segment"].astype(str)

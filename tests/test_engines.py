@@ -444,8 +444,8 @@ def test_seeded_sample_is_the_smallest_hashes_on_every_engine(target, tmp_path):
 
 def test_short_sample_read_again_and_both_reads_agree(target, tmp_path, monkeypatch):
     """The first read fetches far too few rows; the boosted second read repairs it. On
-    PostgreSQL the values come by binary COPY, and row by row when COPY is not
-    available; both give the same sample."""
+    PostgreSQL the values come by binary COPY, on DuckDB as numbered numpy columns, and
+    otherwise row by row (or as DuckDB's own columns); every read gives the same sample."""
     from monitor import sampling as sampling_mod
     from monitor import source as source_mod
 
@@ -461,9 +461,9 @@ def test_short_sample_read_again_and_both_reads_agree(target, tmp_path, monkeypa
     else:
         expected = _md5_sample(rows, 15, 5)
     by_tag = {r["tag"]: r["x"] for r in rows}
-    for bulk in ((True, False) if target.name == "postgresql" else (True,)):
-        if not bulk:
-            monkeypatch.setattr(source_mod, "_copy_possible", lambda conn, raw: False)
+    for bulk in ((True, False) if target.name in ("postgresql", "duckdb") else (True,)):
+        if not bulk:  # no numbered read: rows (PostgreSQL) or DuckDB's plain fetchnumpy
+            monkeypatch.setattr(source_mod, "_numbered_possible", lambda raw: False)
         src = Source(cfg)
         try:
             data = src.fetch(PERIOD)
@@ -575,7 +575,20 @@ def test_duckdb_source_is_read_only_quiet_and_memory_capped(tmp_path):
         with pytest.raises(sa.exc.SQLAlchemyError, match="read-only"):  # DuckDB's own words
             conn.exec_driver_sql("INSERT INTO t VALUES (1)")
     engine.dispose()
-    assert got == {"memory_limit": "244.1 MiB", "enable_progress_bar": "false"}  # 256 MB in DuckDB's units
+    # the default is 32 MB per DuckDB thread (the number of cores here), at least 64 MB;
+    # DuckDB's own rendering of that limit is the reference
+    ref = duckdb.connect()
+    threads = ref.execute("SELECT current_setting('threads')").fetchone()[0]
+    ref.execute(f"SET memory_limit = '{max(64, 32 * threads)}MB'")
+    expected = ref.execute("SELECT current_setting('memory_limit')").fetchone()[0]
+    ref.close()
+    assert got == {"memory_limit": expected, "enable_progress_bar": "false"}
+    for threads, shown in ((1, "61.0 MiB"), (4, "122.0 MiB")):  # 64 MB and 128 MB in DuckDB's units
+        engine = make_engine(f"duckdb:///{path}?threads={threads}", read_only=True)
+        with engine.connect() as conn:
+            limit = conn.exec_driver_sql("SELECT current_setting('memory_limit')").scalar()
+        engine.dispose()
+        assert limit == shown
     engine = make_engine(f"duckdb:///{path}?memory_limit=1GB", read_only=True)
     with engine.connect() as conn:
         limit = conn.exec_driver_sql("SELECT current_setting('memory_limit')").scalar()

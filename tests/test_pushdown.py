@@ -246,6 +246,19 @@ def test_int64_bounds_pass_the_same_fraction_as_hex_thresholds():
                                kind="int64") == [(2**63 - 1, ["B"])]
 
 
+def test_md5_60_bounds_keep_the_hex_order():
+    # reference: Python's hashlib.md5; the 15-digit prefix as a number orders rows as the digest does
+    import hashlib
+
+    digests = sorted(hashlib.md5(f"{i}:3".encode()).hexdigest() for i in range(2000))
+    prefixes = [int(d[:15], 16) for d in digests]
+    assert prefixes == sorted(prefixes)
+    for p in (0.01, 0.25, 0.6):
+        t, b = sampling.hex_threshold(p), sampling.md5_60_bound(p)
+        assert [d < t for d in digests] == [x <= b for x in prefixes]
+    assert sampling.md5_60_bound(1.0) is None
+
+
 def test_smallest_ignores_row_order():
     h = np.array(["b", "a", "c", "a"])
     v = np.array([2.0, 5.0, 1.0, 4.0])

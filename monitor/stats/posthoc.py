@@ -36,13 +36,13 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 import numpy as np
-import pandas as pd
 from scipy import integrate, optimize, special, stats
 
 from monitor.stats import multiplicity
 from monitor.stats.studentized import srange_ppf, srange_sf
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
+    import pandas as pd
     from monitor.stats.summary import Moments
 
 __all__ = [
@@ -151,6 +151,8 @@ class PostHocResult:
             for name in (pair.a, pair.b):
                 if name not in names:
                     names.append(name)
+        import pandas as pd  # only here: a run does not need pandas (memory and start-up)
+
         table = pd.DataFrame(np.nan, index=names, columns=names, dtype=float)
         for pair in self.pairs:
             table.loc[pair.a, pair.b] = pair.p_adj
