@@ -21,7 +21,9 @@ that of the measured work alone:
     every row of the period into pandas, then ``scipy.stats.f_oneway`` and
     ``kruskal`` per metric: the approach the push-down replaces.
 
-It prints one table; the ratios are what matter (one run, on the machine noted).
+Each measurement is repeated ``--repeat`` times (default 3, interleaved); the table gives
+the median time and the largest peak. It prints one table; the ratios are what matter
+(one invocation, on the machine noted).
 The database server's own memory is not included. Times are wall-clock seconds.
 PostgreSQL is reached at ``--postgres`` (default the CI database); it is skipped
 with a note when unreachable.
@@ -32,6 +34,7 @@ from __future__ import annotations
 import argparse
 import os
 import platform
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -229,6 +232,8 @@ def main() -> int:
     ap.add_argument("--postgres", default="postgresql+psycopg://postgres@127.0.0.1:5432/segwatch_test")
     ap.add_argument("--workdir", default=None, help="folder for the SQLite/DuckDB files (default: a temp folder)")
     ap.add_argument("--skip-pull", action="store_true", help="leave out the pull-into-pandas measurement")
+    ap.add_argument("--repeat", type=int, default=3,
+                    help="runs of each measurement; the table gives the median time and the largest peak")
     args = ap.parse_args()
 
     folder = Path(args.workdir or tempfile.mkdtemp(prefix="segwatch-bench-"))
@@ -251,16 +256,20 @@ def main() -> int:
             continue
         print(f"{engine}: {args.rows:,} rows generated in {gen:.1f} s", file=sys.stderr, flush=True)
         cfg = write_config(folder, engine, url, args.metrics)
-        wall, rss, out = measure([py, "-c", AGGREGATE, str(cfg), PERIOD], env)
-        q_time = float(out.split()[-2])
-        table.append((engine, "aggregate query", q_time, rss))
-        wall, rss, out = measure([py, "-c", IN_PROCESS, str(cfg), PERIOD], env)
-        table.append((engine, "run (in-process)", float(out.split()[-1]), rss))
-        wall, rss, _ = measure([py, "-m", "monitor", "run", str(cfg), "--period", PERIOD], env)
-        table.append((engine, "run (process)", wall, rss))
-        if not args.skip_pull:
-            wall, rss, out = measure([py, "-c", PULL, url, str(args.metrics), engine], env)
-            table.append((engine, "pull + scipy", float(out.split()[-1]), rss))
+        runs: dict[str, list[tuple[float, float]]] = {}
+        measure([py, "-c", AGGREGATE, str(cfg), PERIOD], env)  # warm-up: the table into the OS cache
+        for _ in range(max(1, args.repeat)):  # interleaved, so that a slow spell hits every row alike
+            wall, rss, out = measure([py, "-c", AGGREGATE, str(cfg), PERIOD], env)
+            runs.setdefault("aggregate query", []).append((float(out.split()[-2]), rss))
+            wall, rss, out = measure([py, "-c", IN_PROCESS, str(cfg), PERIOD], env)
+            runs.setdefault("run (in-process)", []).append((float(out.split()[-1]), rss))
+            wall, rss, _ = measure([py, "-m", "monitor", "run", str(cfg), "--period", PERIOD], env)
+            runs.setdefault("run (process)", []).append((wall, rss))
+            if not args.skip_pull:
+                wall, rss, out = measure([py, "-c", PULL, url, str(args.metrics), engine], env)
+                runs.setdefault("pull + scipy", []).append((float(out.split()[-1]), rss))
+        for what, got in runs.items():
+            table.append((engine, what, statistics.median(t for t, _ in got), max(r for _, r in got)))
         print(f"{engine}: measured", file=sys.stderr, flush=True)
 
     print(f"\n{args.rows:,} rows x {args.metrics} metrics x 50 segments; {machine()}\n")
