@@ -275,7 +275,7 @@ class Source:
         except SQLAlchemyError as exc:
             raise SourceError(
                 f"{self.job.path}: {step} for period {period.ident} on {redact(self.cfg.url)} failed: "
-                f"{one_line(exc)} (compute: local reads the rows instead)"
+                f"{one_line(exc)} ({_failure_hint(traits, exc)})"
             ) from exc
         inputs = []
         for p in plans:
@@ -414,6 +414,14 @@ class Source:
 
     def dispose(self) -> None:
         self.engine.dispose()
+
+
+def _failure_hint(traits: EngineTraits, exc: BaseException) -> str:
+    """What to do about a failed push-down query, in a few words."""
+    if traits.name == "duckdb" and "out of memory" in str(exc).lower():
+        return ("DuckDB ran out of the memory segwatch allows it; set a larger limit in the URL, "
+                "e.g. duckdb:///file.duckdb?memory_limit=1GB")
+    return "compute: local reads the rows instead"
 
 
 def _tune_session(conn: sa.Connection, traits: EngineTraits, columns: int = 0) -> None:

@@ -594,3 +594,27 @@ def test_duckdb_source_is_read_only_quiet_and_memory_capped(tmp_path):
         limit = conn.exec_driver_sql("SELECT current_setting('memory_limit')").scalar()
     engine.dispose()
     assert limit == "953.6 MiB"  # the URL's own limit is kept
+
+
+def test_duckdb_limit_grows_with_the_columns_read_and_its_failure_names_the_fix(tmp_path):
+    duckdb = pytest.importorskip("duckdb", reason="duckdb is not installed")
+    pytest.importorskip("duckdb_engine", reason="duckdb-engine is not installed")
+    from monitor import db
+    from monitor.pushdown import EngineTraits
+    from monitor.source import _failure_hint
+
+    path = tmp_path / "wide.duckdb"
+    duckdb.connect(str(path)).close()
+    engine = db.make_engine(f"duckdb:///{path}?threads=2", read_only=True)
+    with engine.connect() as conn:
+        db.fit_duckdb_memory(conn, 100)  # 100 columns: 1.5 MB each per thread, 2 threads
+        limit = conn.exec_driver_sql("SELECT current_setting('memory_limit')").scalar()
+        traits = EngineTraits.of(conn.dialect)
+    engine.dispose()
+    ref = duckdb.connect()  # DuckDB's own rendering of 300 MB is the reference
+    ref.execute("SET memory_limit = '300MB'")
+    assert limit == ref.execute("SELECT current_setting('memory_limit')").fetchone()[0]
+    ref.close()
+    hint = _failure_hint(traits, RuntimeError("Out of Memory Error: could not allocate block of size 256.0 KiB"))
+    assert "?memory_limit=" in hint
+    assert _failure_hint(traits, RuntimeError("Catalog Error: no such table")) == "compute: local reads the rows instead"
