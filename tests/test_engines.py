@@ -618,3 +618,31 @@ def test_duckdb_limit_grows_with_the_columns_read_and_its_failure_names_the_fix(
     hint = _failure_hint(traits, RuntimeError("Out of Memory Error: could not allocate block of size 256.0 KiB"))
     assert "?memory_limit=" in hint
     assert _failure_hint(traits, RuntimeError("Catalog Error: no such table")) == "compute: local reads the rows instead"
+
+
+def test_postgresql_runs_the_period_without_jit(tmp_path):
+    """JIT compilation of the wide aggregate cost more than the scan (docs/engines.md):
+    segwatch switches it off for its own transaction only."""
+    t = make_target("postgresql", tmp_path)
+    try:
+        table = create_table(t, f"jit_{uuid.uuid4().hex[:8]}", parity_rows("postgresql"))
+        src = Source(job_config(t, table, tmp_path, metrics=[{"column": "x"}]))
+        seen: list[str] = []
+
+        def record(conn, cursor, statement, *args):
+            if "GROUP BY" in statement.upper() and "SUM(" in statement.upper():
+                seen.append(conn.exec_driver_sql("SHOW jit").scalar())
+
+        sa.event.listen(src.engine, "before_cursor_execute", record)
+        # the session's own default is "on" (whatever the server's is), so "off" is segwatch's doing
+        sa.event.listen(src.engine, "connect", lambda dbapi, rec: dbapi.execute("SET jit = on"))
+        try:
+            src.fetch(PERIOD)
+            with src.engine.connect() as conn:  # a later transaction has the server's setting again
+                after = conn.exec_driver_sql("SHOW jit").scalar()
+        finally:
+            src.dispose()
+        assert seen and set(seen) == {"off"}
+        assert after == "on"
+    finally:
+        t.close()
