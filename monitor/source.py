@@ -513,6 +513,7 @@ def _fetch_columns(conn: sa.Connection, stmt: sa.Select, traits: EngineTraits, w
 COPY_MAX_SEGMENTS = 200
 #: Bytes of the COPY stream gathered before numpy parses them.
 COPY_BLOCK_BYTES = 4 << 20
+_COPY_FIX = " (a proxy or driver that alters COPY data?); compute: local reads the rows instead"
 _COPY_SIGNATURE = b"PGCOPY\n\xff\r\n\x00"
 
 
@@ -530,9 +531,10 @@ def _copy_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed: b
                   raw: Mapping[str, Sequence[Any]]) -> tuple[np.ndarray, np.ndarray, list[np.ndarray]]:
     """The values query through PostgreSQL's binary ``COPY ... TO STDOUT``, parsed by numpy.
 
-    The rows are reshaped so that every field has a fixed width: the segment becomes
-    its number in ``raw`` (``CASE``), the hash stays 32 hex characters, and a value
-    that is not usable becomes NaN instead of NULL. Each row then has the same layout
+    The rows are reshaped so that every field has a fixed width (:func:`_numbered`):
+    the segment becomes its number in ``raw`` (``CASE``), the hash is a 64-bit integer
+    (or 32 hex characters, before PostgreSQL 11), and a value that is not usable
+    becomes NaN instead of NULL. Each row then has the same layout
     (PostgreSQL's documented binary copy format: a 16-bit field count, then per field
     a 32-bit length and the big-endian value), so chunks of the stream are read with
     one structured numpy dtype instead of creating a Python object per value. Runs on
@@ -567,7 +569,7 @@ def _copy_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed: b
             if len(buf) < 19:
                 return
             if bytes(buf[:11]) != _COPY_SIGNATURE:
-                raise SourceError("PostgreSQL COPY returned an unexpected header")
+                raise SourceError(f"PostgreSQL COPY returned an unexpected header{_COPY_FIX}")
             ext = int.from_bytes(buf[15:19], "big")
             del buf[:19 + ext]
             start = False
@@ -577,7 +579,7 @@ def _copy_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed: b
         block = np.frombuffer(memoryview(buf)[:whole], dtype=dtype)
         for name, size_ in expect.items():
             if name in dtype.names and not np.all(block[name] == size_):
-                raise SourceError("PostgreSQL COPY returned rows of an unexpected layout")
+                raise SourceError(f"PostgreSQL COPY returned rows of an unexpected layout{_COPY_FIX}")
         for name in names_out:
             parts[name].append(block[name].astype(native[name]))
         del block
@@ -595,7 +597,7 @@ def _copy_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed: b
     finally:
         cursor.close()
     if bytes(buf) not in (b"\xff\xff", b""):
-        raise SourceError("PostgreSQL COPY returned rows of an unexpected layout")
+        raise SourceError(f"PostgreSQL COPY returned rows of an unexpected layout{_COPY_FIX}")
     columns = {}
     for name in names_out:
         pieces = parts.pop(name)
