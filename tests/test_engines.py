@@ -646,3 +646,26 @@ def test_postgresql_runs_the_period_without_jit(tmp_path):
         assert after == "on"
     finally:
         t.close()
+
+
+def test_postgresql_before_11_samples_by_md5_through_copy(tmp_path, monkeypatch):
+    """Servers without the seeded 64-bit hash (PostgreSQL 10) sample by md5; the COPY read
+    then carries 32-character hashes. Forced here on the test server."""
+    from monitor import pushdown as pushdown_mod
+
+    monkeypatch.setattr(pushdown_mod, "hash_kind", lambda traits: "md5")
+    t = make_target("postgresql", tmp_path)
+    try:
+        rows = parity_rows("postgresql")
+        table = create_table(t, f"md5_{uuid.uuid4().hex[:8]}", rows)
+        src = Source(job_config(t, table, tmp_path, metrics=[{"column": "tag", "test": "kruskal"}],
+                                sampling={"mode": "sample", "cap": 12, "seed": 9}))
+        try:
+            data = src.fetch(PERIOD)
+        finally:
+            src.dispose()
+        expected = _md5_sample(rows, 12, 9)  # reference: Python's hashlib.md5, the 12 smallest
+        for seg in data.metrics[0].segments:
+            assert set(seg.values.astype(int)) == expected[seg.segment]
+    finally:
+        t.close()
