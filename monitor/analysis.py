@@ -282,6 +282,28 @@ MAX_PAIR_SEGMENTS = 100  # beyond this many segments, pairs are skipped (k(k-1)/
 DEFAULT_THRESHOLD_F = 0.25  # Cohen's "medium" f (common practice)
 
 
+def run_omnibus(test: str, labels: Sequence[str], groups: Sequence[Moments],
+                samples: Sequence[np.ndarray] | None, checks: Mapping[str, Check]
+                ) -> tuple[str, str, Any]:
+    """The method for ``test`` (``auto``: :func:`~monitor.stats.diagnostics.choose_method`
+    on ``checks``), the reason, and the omnibus result (Fisher's or Welch's ANOVA,
+    Kruskal-Wallis). Without ``samples`` a rank test falls back to Welch's ANOVA."""
+    if test == "auto":
+        choice = diagnostics.choose_method(groups, samples, checks, labels=labels)
+        method, reason = choice.method, choice.reason
+    else:
+        method, reason = test, f"set in the config (test: {test})"
+    if method == "kruskal" and samples is None:
+        method, reason = "welch", reason + "; values were not available for ranks, so Welch's ANOVA was used"
+    if method == "anova":
+        res = omnibus.fisher_anova(groups)
+    elif method == "welch":
+        res = omnibus.welch_anova(groups)
+    else:
+        res = omnibus.kruskal_wallis(samples)
+    return method, reason, res
+
+
 def analyse_metric(data: MetricInput, job: JobConfig, n_metrics: int = 1) -> MetricResult:
     """Compare the segments of one metric. q-value and the gated flags come later,
     from :func:`finalise`."""
@@ -332,20 +354,7 @@ def analyse_metric(data: MetricInput, job: JobConfig, n_metrics: int = 1) -> Met
         diagnostics.run_checks(labels, groups, samples, presorted=[ordered[id(s)] for s in kept])
         if has_values else {}
     )
-    if m.test == "auto":
-        choice = diagnostics.choose_method(groups, samples if has_values else None, checks, labels=labels)
-        method, reason = choice.method, choice.reason
-    else:
-        method, reason = m.test, f"set in the config (test: {m.test})"
-    if method == "kruskal" and not has_values:
-        method, reason = "welch", reason + "; values were not available for ranks, so Welch's ANOVA was used"
-
-    if method == "anova":
-        res = omnibus.fisher_anova(groups)
-    elif method == "welch":
-        res = omnibus.welch_anova(groups)
-    else:
-        res = omnibus.kruskal_wallis(samples)
+    method, reason, res = run_omnibus(m.test, labels, groups, samples if has_values else None, checks)
     if res.note:
         notes.append(res.note)
 

@@ -56,6 +56,7 @@ from .analysis import (
     analyse_period,
     finalise,
     relevant_checks,
+    run_omnibus,
 )
 from .config import JobConfig, parse_config
 from .events import Baseline, Event, derive_events, lookback
@@ -315,19 +316,7 @@ def screen_metric(data: MetricInput, job: JobConfig, *, checks: bool = True) -> 
     has_values = all(s.values is not None for s in kept)
     samples = [s.values if s.values is not None else np.empty(0) for s in kept]
     found = diagnostics.run_checks(labels, groups, samples) if has_values and (checks or m.test == "auto") else {}
-    if m.test == "auto":
-        choice = diagnostics.choose_method(groups, samples if has_values else None, found, labels=labels)
-        method, reason = choice.method, choice.reason
-    else:
-        method, reason = m.test, f"set in the config (test: {m.test})"
-    if method == "kruskal" and not has_values:
-        method = "welch"
-    if method == "anova":
-        res = omnibus.fisher_anova(groups)
-    elif method == "welch":
-        res = omnibus.welch_anova(groups)
-    else:
-        res = omnibus.kruskal_wallis(samples)
+    method, reason, res = run_omnibus(m.test, labels, groups, samples if has_values else None, found)
     effect = (effects.epsilon_squared(res) if method == "kruskal"
               else effects.omega_squared(res, confidence=job.posthoc.confidence))
     return MetricResult(method=method, method_reason=reason, statistic=res.statistic, df=tuple(res.df),

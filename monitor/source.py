@@ -467,11 +467,7 @@ def _fetch_columns(conn: sa.Connection, stmt: sa.Select, traits: EngineTraits, w
             data = result.cursor.fetchnumpy()
             columns = [data[k] for k in result.keys()]
             labels = np.array([str(v) for v in np.asarray(columns[0], dtype=object)], dtype=object)
-            if hashed:
-                h = np.asarray(columns[1])
-                hashes = h.astype(np.int64) if h.dtype.kind in "iu" else h.astype("S32")
-            else:
-                hashes = np.empty(0, dtype="S32")
+            hashes = _hash_array(columns[1]) if hashed else _hash_array(())
             return labels, hashes, [_floats(c) for c in columns[1 + hashed:]]
         chunks = [result.all()]
     else:
@@ -487,8 +483,7 @@ def _fetch_columns(conn: sa.Connection, stmt: sa.Select, traits: EngineTraits, w
         part = [np.fromiter((codes.setdefault(str(v), len(codes)) for v in cols[0]), dtype=np.int32,
                             count=len(cols[0]))]
         if hashed:
-            text = not cols[1] or not isinstance(cols[1][0], int)
-            part.append(np.array(cols[1], dtype="S32" if text else np.int64))
+            part.append(_hash_array(cols[1]))
         part += [np.array(c, dtype=float) for c in cols[1 + hashed:]]
         parts.append(part)
         del cols
@@ -646,14 +641,16 @@ def _duckdb_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed:
         raise SourceError("the values query returned a segment the aggregate query did not")
     labels = np.array(names, dtype=object)[g] if g.size else np.empty(0, dtype=object)
     del g
-    if hashed:
-        h = np.asarray(data.pop(keys[1]))
-        hashes = h.astype(np.int64) if h.dtype.kind in "iu" else h.astype("S32")
-        del h
-    else:
-        hashes = np.empty(0, dtype="S32")
+    hashes = _hash_array(data.pop(keys[1])) if hashed else _hash_array(())
     values = [np.asarray(data.pop(k), dtype=float) for k in keys[1 + hashed:]]
     return labels, hashes, values
+
+
+def _hash_array(values: Any) -> np.ndarray:
+    """Sampling hashes as an array that sorts like them: 64-bit integers, or the hex digests
+    as 32-byte strings (an empty input gives an empty string array)."""
+    a = np.asarray(values)
+    return a.astype(np.int64) if a.size and a.dtype.kind in "iu" else a.astype("S32")
 
 
 def _value_positions(sub: sa.Subquery) -> list[int]:
