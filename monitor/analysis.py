@@ -34,18 +34,47 @@ from __future__ import annotations
 
 import logging
 import math
+import threading
 from dataclasses import dataclass, field, replace
-from typing import Any, Mapping, Sequence
+from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
 import numpy as np
 
 from .config import JobConfig, MetricConfig
-from .stats import diagnostics, effects, flags, multiplicity, omnibus, posthoc, power
-from .stats.diagnostics import Check
-from .stats.effects import EffectSize
 from .stats.summary import Moments
 
+if TYPE_CHECKING:
+    from .stats.diagnostics import Check
+    from .stats.effects import EffectSize
+
+# The statistical routines (monitor.stats.diagnostics and its siblings) bring in scipy:
+# about 65 MB and most of a second of start-up. They are imported by the functions that
+# use them, not here, because this module's result types are needed by every command.
+# A run loads them either while a database server computes the period's sums (the
+# process only waits then: :func:`load_statistics_in_background`) or, for an engine
+# that works inside this process (DuckDB, SQLite), after the source has been read and
+# closed, so that the engine's buffers and scipy are never resident at once.
+
 log = logging.getLogger(__name__)
+
+
+def load_statistics() -> None:
+    """Import the statistical routines now (they are otherwise imported on first use)."""
+    from .stats import diagnostics, effects, flags, multiplicity, omnibus, posthoc, power  # noqa: F401
+
+
+def load_statistics_in_background() -> threading.Thread:
+    """Start :func:`load_statistics` in a daemon thread and return it (join it before
+    the statistics run). An import error is left for the first real use to raise."""
+    def load() -> None:
+        try:
+            load_statistics()
+        except Exception:  # noqa: BLE001 - the same import in the caller reports it
+            log.debug("loading the statistical routines in the background failed", exc_info=True)
+
+    thread = threading.Thread(target=load, name="segwatch-load-statistics", daemon=True)
+    thread.start()
+    return thread
 
 POSTHOC_FOR = {"anova": "tukey-kramer", "welch": "games-howell", "kruskal": "dunn"}
 MANY_TO_ONE_FOR = {"anova": "dunnett", "welch": "games-howell", "kruskal": "dunn"}
@@ -72,6 +101,8 @@ def segment_quantiles(values: np.ndarray | None, *, presorted: np.ndarray | None
         return ()
     if presorted is None:
         presorted = np.sort(np.asarray(values, dtype=float).ravel())
+    from .stats import diagnostics
+
     return tuple(diagnostics.quantiles_of_sorted(presorted, _LEVELS).tolist())
 
 
@@ -288,6 +319,8 @@ def run_omnibus(test: str, labels: Sequence[str], groups: Sequence[Moments],
     """The method for ``test`` (``auto``: :func:`~monitor.stats.diagnostics.choose_method`
     on ``checks``), the reason, and the omnibus result (Fisher's or Welch's ANOVA,
     Kruskal-Wallis). Without ``samples`` a rank test falls back to Welch's ANOVA."""
+    from .stats import diagnostics, omnibus
+
     if test == "auto":
         choice = diagnostics.choose_method(groups, samples, checks, labels=labels)
         method, reason = choice.method, choice.reason
@@ -307,6 +340,8 @@ def run_omnibus(test: str, labels: Sequence[str], groups: Sequence[Moments],
 def analyse_metric(data: MetricInput, job: JobConfig, n_metrics: int = 1) -> MetricResult:
     """Compare the segments of one metric. q-value and the gated flags come later,
     from :func:`finalise`."""
+    from .stats import diagnostics, effects, flags, posthoc
+
     m = data.metric
     min_n = max(2, job.quality.min_rows_per_segment)
     # each segment's values sorted once: quantiles, medians, quartiles and Shapiro-Wilk read them
@@ -435,6 +470,8 @@ def sensitivity(groups: Sequence[Moments], job: JobConfig, n_metrics: int,
     must pass under Benjamini-Hochberg (and Holm, Bonferroni), so "detectable"
     means detectable even when nothing else in the period is.
     """
+    from .stats import power
+
     sizes = [g.n for g in groups]
     if len(sizes) < 2 or sum(sizes) - len(sizes) < 1:
         return None
@@ -467,6 +504,8 @@ def _segment_verdicts(labels: Sequence[str], pairs: Sequence[PairRow], reference
     ``high``/``low`` when its gap to the reference is significant (the reference
     itself is never flagged).
     """
+    from .stats import flags
+
     if reference is None:
         verdicts = flags.majority_of_pairs(labels, [(p.a, p.b, p.diff, p.p_adj) for p in pairs], alpha)
         return {v.segment: (v.above, v.below, v.direction) for v in verdicts}
@@ -518,6 +557,8 @@ def finalise(results: Sequence[MetricResult], job: JobConfig) -> tuple[MetricRes
     Benjamini, Y. and Bogomolov, M. (2014). Selective inference on multiple
     families of hypotheses. JRSS B 76(1), 297-318.
     """
+    from .stats import multiplicity
+
     p = np.array([r.p_value for r in results], dtype=float)
     q = multiplicity.adjust(p, job.fdr.method) if len(p) else p
     sig_all = [bool(math.isfinite(qv) and qv <= job.fdr.level) for qv in q]

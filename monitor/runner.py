@@ -29,7 +29,7 @@ from datetime import timedelta
 from typing import Any, Callable, Iterable
 
 from .alerts import RELAY_WAIT_SECONDS, RelayOutcome, build_sinks, op_channels, relay
-from .analysis import MetricResult, analyse_period
+from .analysis import MetricResult, analyse_period, load_statistics_in_background
 from .clock import Clock, SystemClock
 from .config import JobConfig, config_hash
 from .errors import SegwatchError
@@ -172,7 +172,11 @@ class Job:
 
     def _compute(self, period: Period, claim: Claim) -> PeriodReport:
         cfg = self.config
+        # a server computes the sums while this process waits: load scipy meanwhile
+        loading = load_statistics_in_background() if self.source.remote else None
         data = self.source.fetch(period)
+        if loading is not None:
+            loading.join()
         if data.rows == 0:
             self.ledger.finish_empty(claim, period.start, period.end)
             outcome = self.deliver()

@@ -84,6 +84,8 @@ SAMPLE_RETRIES = 4
 FETCH_CHUNK = 20_000
 #: Engines whose queries of one period are run in one REPEATABLE READ transaction.
 _SNAPSHOT_ENGINES = ("postgresql", "mysql")
+#: Engines that run inside segwatch's own process.
+_IN_PROCESS_ENGINES = ("sqlite", "duckdb")
 
 
 @dataclass(frozen=True)
@@ -121,6 +123,12 @@ class Source:
         self.direct = True
 
     # -------------------------------------------------------------- structure
+
+    @property
+    def remote(self) -> bool:
+        """Whether the source is a database server (the work happens in another
+        process), not an engine inside this one (SQLite, DuckDB)."""
+        return self.engine.dialect.name not in _IN_PROCESS_ENGINES
 
     def _relation(self) -> sa.FromClause:
         if self._from is None:

@@ -13,7 +13,11 @@ that of the measured work alone:
     the whole ``python -m monitor run CONFIG --period 2026-W10`` (start-up and
     imports, probe, aggregate query, sampled values, statistics, history write).
 ``run (in-process)``
-    ``Job.run`` alone, timed inside the child (imports excluded).
+    ``Job.run`` alone, timed inside the child (imports excluded), with the statistical
+    routines loaded beforehand, as in a scheduler process after its first period: the
+    steady state of a long-running process, time and peak memory. (A one-shot ``run``
+    on an engine inside the process, DuckDB or SQLite, loads scipy only after the
+    source is read, so its peak can be lower than this one.)
 ``aggregate query``
     the bare aggregate query segwatch sends, timed around its execution alone
     (the shift probe before it is not timed); its peak memory includes imports.
@@ -151,8 +155,10 @@ def measure(argv: list[str], env: dict | None = None) -> tuple[float, float, str
 
 IN_PROCESS = textwrap.dedent("""
     import sys, time
+    from monitor.analysis import load_statistics
     from monitor.config import load_config
     from monitor.runner import Job
+    load_statistics()  # as a scheduler has them after its first period
     job = Job(load_config(sys.argv[1]))
     t0 = time.perf_counter()
     job.run(sys.argv[2])

@@ -260,3 +260,42 @@ def test_python_dash_m_is_the_same_program(project: Path):
                            "--period", "2026-W99"], capture_output=True, text=True)
     assert proc.returncode == 2
     assert proc.stderr.startswith("Error: ") and "2026-W99" in proc.stderr
+
+
+# A run's memory peak: the statistical routines (scipy) and the source's work are kept apart.
+# In a fresh interpreter: the command line imports no scipy; an engine inside the process
+# (SQLite here, as DuckDB) is read before scipy is loaded; for a server, scipy is loaded
+# while the server works, by the time the fetch returns. The run's output must still agree
+# with scipy (checked by the other tests here), so loading late cannot lose a result.
+_LOAD_ORDER = """
+import sys
+import monitor.cli
+from monitor import source
+from monitor.config import load_config
+from monitor.runner import Job
+print("scipy at import:", any(m == "scipy" or m.startswith("scipy.") for m in sys.modules))
+fetch = source.Source.fetch
+def watched(self, period):
+    print("scipy before fetch:", "scipy.stats" in sys.modules)
+    out = fetch(self, period)
+    print("scipy after fetch:", "scipy.stats" in sys.modules)
+    return out
+source.Source.fetch = watched
+if sys.argv[2] == "remote":  # as a database server would be
+    source.Source.remote = property(lambda self: True)
+report = Job(load_config(sys.argv[1])).run("2026-W11")
+print("scipy after run:", "scipy.stats" in sys.modules, [m.method for m in report.metrics])
+"""
+
+
+@pytest.mark.parametrize("where", ["in-process", "remote"])
+def test_statistics_load_apart_from_the_source(project: Path, where: str):
+    proc = subprocess.run([sys.executable, "-c", _LOAD_ORDER, str(project / "job.yaml"), where],
+                          capture_output=True, text=True, cwd=project)
+    assert proc.returncode == 0, proc.stderr
+    lines = dict(line.split(": ", 1) for line in proc.stdout.splitlines())
+    assert lines["scipy at import"] == "False"
+    assert lines["scipy before fetch"] == "False"
+    assert lines["scipy after fetch"] == ("True" if where == "remote" else "False")
+    assert lines["scipy after run"].startswith("True")
+    assert "anova" in lines["scipy after run"] and "kruskal" in lines["scipy after run"]
