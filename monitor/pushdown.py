@@ -89,6 +89,8 @@ from typing import Any, Iterable, Mapping, Sequence
 
 import sqlalchemy as sa
 from sqlalchemy.ext.compiler import compiles
+from sqlalchemy.sql.base import Executable
+from sqlalchemy.sql.elements import ClauseElement
 from sqlalchemy.sql.functions import FunctionElement
 
 from .analysis import QualityCounts
@@ -173,6 +175,27 @@ def _to_double_default(element: to_double, compiler: Any, **kw: Any) -> str:
 def _to_double_mysql(element: to_double, compiler: Any, **kw: Any) -> str:
     (arg,) = list(element.clauses)
     return f"({compiler.process(arg, **kw)} + 0E0)"
+
+
+# ------------------------------------------------------------------ temporary table
+
+
+class CreateTempTableAs(Executable, ClauseElement):
+    """``CREATE OR REPLACE TEMPORARY TABLE name AS <select>`` (DuckDB), with the
+    select's bound parameters passed as usual (the "CREATE TABLE AS" pattern of
+    SQLAlchemy's compiler extension)."""
+
+    inherit_cache = False
+
+    def __init__(self, name: str, select: sa.Select):
+        self.name = name
+        self.select = select
+
+
+@compiles(CreateTempTableAs)
+def _create_temp_table_as(element: CreateTempTableAs, compiler: Any, **kw: Any) -> str:
+    name = compiler.preparer.quote(element.name)
+    return f"CREATE OR REPLACE TEMPORARY TABLE {name} AS {compiler.process(element.select, **kw)}"
 
 
 # ------------------------------------------------------------------ planning
