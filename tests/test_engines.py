@@ -442,6 +442,43 @@ def test_seeded_sample_is_the_smallest_hashes_on_every_engine(target, tmp_path):
         assert s.moments.n > 20  # the moments still come from all rows
 
 
+def test_query_source_pushed_down_matches_local_and_samples(target, tmp_path):
+    """A ``query:`` source is read as a subquery: without a primary key the sample is keyed
+    by time and segment. Sums match the local path (the corrected two-pass reference of
+    assert_same_summaries); the sample holds ``cap`` values per segment, drawn from that
+    segment's own values."""
+    rows = parity_rows(target.name)
+    table = create_table(target, f"qsrc_{uuid.uuid4().hex[:8]}", rows)
+    query = f"SELECT id, ts, seg, x, tag FROM {table} WHERE tag % 7 <> 0"
+    cfg = job_config(target, table, tmp_path, metrics=[{"column": "x"}])
+    cfg = replace(cfg, source=replace(cfg.source, table=None, query=query))
+    src_push, src_local = Source(cfg), Source(replace(cfg, compute="local"))
+    try:
+        push, local = src_push.fetch(PERIOD), src_local.fetch(PERIOD)
+    finally:
+        src_push.dispose()
+        src_local.dispose()
+    in_week = [r for r in rows if MONDAY <= r["ts"] < MONDAY + timedelta(days=7) and r["tag"] % 7 != 0]
+    assert push.compute == "pushdown"
+    assert push.rows == local.rows == len(in_week)  # rows without a segment included
+    assert push.null_segment_rows == local.null_segment_rows == sum(1 for r in in_week if r["seg"] is None)
+    assert_same_summaries(push, local)
+
+    sampled = replace(cfg, sampling=replace(cfg.sampling, mode="sample", cap=12))
+    src = Source(sampled)
+    try:
+        data = src.fetch(PERIOD)
+    finally:
+        src.dispose()
+    (metric,) = data.metrics
+    assert data.sampled and metric.sample_size is not None
+    for seg, full in zip(metric.segments, local.metrics[0].segments):
+        assert seg.segment == full.segment
+        usable = np.sort(full.values)
+        assert len(seg.values) <= 12 and len(seg.values) >= min(12, len(usable)) - 2  # NULL/inf rows drop out
+        assert np.isin(seg.values, usable).all()
+
+
 def test_short_sample_read_again_and_both_reads_agree(target, tmp_path, monkeypatch):
     """The first read fetches far too few rows; the boosted second read repairs it. On
     PostgreSQL the values come by binary COPY, on DuckDB as numbered numpy columns, and
