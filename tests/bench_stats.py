@@ -3,7 +3,7 @@
 Run:  OMP_NUM_THREADS=1 python tests/bench_stats.py [--metrics 10000] [--segments 20]
       [--per-metric-sample 100] [--repeat 3]
 
-Prints one table: the batch routines (monitor/stats/batch.py) and the per-metric
+Prints one table: the batch routines (tests/support/batch.py) and the per-metric
 routines (monitor/stats/omnibus.py + posthoc.py) on the same summaries, one core.
 Each row is the best of ``--repeat`` runs (the machine may be shared). The batch
 p-values come from interpolation tables built once per number of segments; the
@@ -40,7 +40,7 @@ def main() -> None:
     args = ap.parse_args()
 
     from monitor.stats import omnibus, posthoc
-    from monitor.stats.batch import anova_tukey, welch_games_howell
+    from tests.support.batch import anova_tukey, welch_games_howell
     from monitor.stats.studentized import srange_sf
     from monitor.stats.summary import Moments
 

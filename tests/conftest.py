@@ -7,8 +7,8 @@ from pathlib import Path
 
 import pytest
 
-#: /work/shared/reference, found relative to the repository root (never copied into it).
-REFERENCE_DIR = Path(__file__).resolve().parents[1].parent / "shared" / "reference"
+#: tests/reference: frozen copies of the published reference data (sources in its README.md).
+REFERENCE_DIR = Path(__file__).resolve().parent / "reference"
 
 
 @pytest.fixture(scope="session")

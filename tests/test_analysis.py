@@ -17,7 +17,7 @@ from monitor.analysis import MAX_PAIR_SEGMENTS, MetricInput, SegmentInput, analy
 from monitor.config import parse_config
 from monitor.stats.summary import Moments
 
-REF = Path(__file__).resolve().parents[1].parent / "shared" / "reference"
+REF = Path(__file__).resolve().parent / "reference"
 
 
 def make_job(tmp_path: Path, metrics, **extra):

@@ -45,7 +45,7 @@ from monitor.periods import parse_period
 from monitor.source import Source
 from monitor.stats.omnibus import fisher_anova
 
-NIST_DIR = Path(__file__).resolve().parents[1].parent / "shared" / "reference" / "nist_strd_anova"
+NIST_DIR = Path(__file__).resolve().parent / "reference" / "nist_strd_anova"
 CERTIFIED = json.loads((NIST_DIR / "certified.json").read_text(encoding="utf-8"))["datasets"]
 
 MONDAY = datetime(2026, 3, 2)  # 2026-W10

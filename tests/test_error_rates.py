@@ -31,7 +31,7 @@ from scipy import stats
 from monitor.analysis import analyse_period, finalise
 from monitor.stats import omnibus
 from monitor.stats.summary import Moments
-from monitor.simulate import (
+from tests.sim.engine import (
     Design,
     StreamSpec,
     analyse_gated,

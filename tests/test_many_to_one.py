@@ -41,7 +41,7 @@ from statsmodels.stats.multitest import multipletests
 from monitor.stats.posthoc import dunn, games_howell, many_to_one
 from monitor.stats.summary import Moments
 
-REFERENCE = Path(__file__).resolve().parents[1].parent / "shared" / "reference"
+REFERENCE = Path(__file__).resolve().parent / "reference"
 
 P_ABS = 3e-4  # scipy.stats.dunnett p-value noise (see the module notes)
 HALF_REL = 2e-3  # scipy.stats.dunnett interval half-width noise (see the module notes)

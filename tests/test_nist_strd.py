@@ -28,7 +28,7 @@ from monitor.stats.omnibus import fisher_anova
 from monitor.stats.summary import Moments
 
 # read at collection time (the data sets parametrize the tests), so not via a fixture
-NIST_DIR = Path(__file__).resolve().parents[1].parent / "shared" / "reference" / "nist_strd_anova"
+NIST_DIR = Path(__file__).resolve().parent / "reference" / "nist_strd_anova"
 CERTIFIED = json.loads((NIST_DIR / "certified.json").read_text(encoding="utf-8"))["datasets"]
 DATASETS = list(CERTIFIED)
 

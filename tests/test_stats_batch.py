@@ -1,4 +1,4 @@
-"""monitor/stats/batch.py against the per-metric routines and the reference libraries."""
+"""tests/support/batch.py against the per-metric routines and the reference libraries."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ from scipy import stats
 from statsmodels.stats.oneway import anova_oneway
 
 from monitor.stats import effects, omnibus, posthoc
-from monitor.stats.batch import anova_tukey, welch_games_howell
+from tests.support.batch import anova_tukey, welch_games_howell
 from monitor.stats.studentized import srange_sf
 from monitor.stats.summary import Moments
 

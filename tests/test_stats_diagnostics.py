@@ -2,7 +2,7 @@
 
 Sources: scipy.stats (levene with center='median', shapiro, normaltest, skew),
 statsmodels multipletests, numpy, hand computation of Tukey's fences, and the
-rules of thumb in shared/reference/published_examples.json (common practice).
+rules of thumb in tests/reference/published_examples.json (common practice).
 """
 
 from __future__ import annotations
@@ -35,7 +35,7 @@ from monitor.stats.summary import Moments
 
 pytestmark = pytest.mark.filterwarnings("error")
 
-REFERENCE = Path(__file__).resolve().parents[1].parent / "shared" / "reference"
+REFERENCE = Path(__file__).resolve().parent / "reference"
 
 
 def _summaries(samples):

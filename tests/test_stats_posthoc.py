@@ -2,7 +2,7 @@
 
 Sources: scipy.stats (tukey_hsd, dunnett, ttest_ind), pingouin.pairwise_gameshowell,
 scikit_posthocs.posthoc_dunn, statsmodels multipletests, and the worked examples in
-shared/reference/published_examples.json. The random data below are only inputs
+tests/reference/published_examples.json. The random data below are only inputs
 for the reference libraries; every expected number comes from outside this project.
 """
 
@@ -27,7 +27,7 @@ from monitor.stats.summary import Moments
 
 pytestmark = pytest.mark.filterwarnings("error")
 
-REFERENCE = Path(__file__).resolve().parents[1].parent / "shared" / "reference"
+REFERENCE = Path(__file__).resolve().parent / "reference"
 
 
 def _published() -> dict:

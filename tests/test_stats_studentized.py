@@ -14,10 +14,10 @@ Sources, named again beside each check:
 * control-chart constants d2, d3 (mean and standard deviation of the range of k
   normal values; Montgomery, Introduction to Statistical Quality Control,
   Appendix VI; values from memory, 3 decimals);
-* the handbook upper points in shared/reference/published_examples.json
+* the handbook upper points in tests/reference/published_examples.json
   (Harter 1960, from memory, 3 decimals).
 
-The interpolated fast path (``monitor.stats.srange_table.srange_sf_fast``) is
+The interpolated fast path (``tests.support.srange_table.srange_sf_fast``) is
 held against the same references (scipy on its grid, the exact k = 2 law, the
 nested quadrature, including live points beyond the table) and, densely, against
 the exact routine of this module for every k from 2 to 50: the requirement is
@@ -46,12 +46,12 @@ import numpy as np
 import pytest
 from scipy import integrate, special, stats
 
-from monitor.stats.srange_table import srange_sf_fast
+from tests.support.srange_table import srange_sf_fast
 from monitor.stats.studentized import srange_cdf, srange_ppf, srange_sf
 
 pytestmark = pytest.mark.filterwarnings("error")
 
-REFERENCE = Path(__file__).resolve().parents[1].parent / "shared" / "reference"
+REFERENCE = Path(__file__).resolve().parent / "reference"
 INF = math.inf
 KS = (2, 3, 5, 10, 20, 50)
 DFS = (2, 3, 5, 10, 20.5, 57.3, 120, 1000, INF)

@@ -12,7 +12,7 @@ module computes them by fixed-node quadrature, so a whole vector of comparisons
   value of simultaneous intervals).
 
 For large batches of tail probabilities,
-:func:`monitor.stats.srange_table.srange_sf_fast` interpolates tables built
+:func:`tests.support.srange_table.srange_sf_fast` interpolates tables built
 from this module's quadrature (~1e-10 absolute instead of ~1e-12 relative,
 about a hundred times faster).
 
@@ -52,7 +52,7 @@ density of the largest value, and integrates to 1.)
   relative in ``R``. Beyond ``w = 40``, ``R(w) < 1e-170`` (any ``k <= 1000``)
   and is taken as 0. (The range up to 40 serves the far tails of large
   ``df``, where ``qS`` is large; the interpolation tables of
-  :mod:`monitor.stats.srange_table` are built on it.)
+  :mod:`tests.support.srange_table` are built on it.)
 * Outer integral (1), per value: ``h(u) = 2 a^a / Gamma(a) exp(-a g(u))``
   with ``a = df / 2`` and ``g(u) = e^(2u) - 1 - 2u``. The window
   ``a g(u) <= 60`` holds all but ``2 e^-60`` of the mass of ``S`` (Chernoff's
@@ -344,7 +344,7 @@ def _sf_pdf_one_k(
 
     ``tail_t`` sets the outer window (all but ``2 exp(-tail_t)`` of S's mass);
     the public functions use ``_TAIL_T``, the interpolation tables of
-    :mod:`monitor.stats.srange_table` a wider one.
+    :mod:`tests.support.srange_table` a wider one.
     """
     tail = _range_tail(k)
     normal = np.isinf(df)

@@ -8,7 +8,7 @@ Run it as one command from the repository root::
 
 It prints Markdown tables (the ones in docs/error_rates.md) with their settings,
 replication counts and Monte Carlo standard errors. The engine is
-:mod:`monitor.simulate`; :mod:`tests.sim.experiments` defines the scenarios and
+:mod:`tests.sim.engine`; :mod:`tests.sim.experiments` defines the scenarios and
 :mod:`tests.sim.endtoend` checks that the engine and a real job (SQLite source,
 history, :class:`monitor.runner.Job`) raise the same events on the same data.
 """

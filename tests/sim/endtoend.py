@@ -3,7 +3,7 @@
 :func:`compare` writes simulated weeks into a SQLite table, runs them through a real
 job (:class:`monitor.runner.Job`: the source's SQL, the analysis, the history
 database, the event rules) with a fixed clock, runs the same values through
-:class:`monitor.simulate.Pipeline`, and compares the events week by week and the
+:class:`tests.sim.engine.Pipeline`, and compares the events week by week and the
 p-values metric by metric.
 """
 
@@ -21,7 +21,7 @@ import numpy as np
 from monitor import runner
 from monitor.clock import FixedClock
 from monitor.config import load_config
-from monitor.simulate import FIRST_MONDAY, Design, Pipeline, draw, metric_inputs, period_ident, shift_for_f
+from tests.sim.engine import FIRST_MONDAY, Design, Pipeline, draw, metric_inputs, period_ident, shift_for_f
 
 TESTS = ("auto", "anova", "welch", "kruskal")
 DESIGN = Design((40, 30, 25))

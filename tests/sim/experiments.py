@@ -23,7 +23,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from monitor.simulate import (
+from tests.sim.engine import (
     METHODS,
     Design,
     StreamSpec,

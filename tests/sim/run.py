@@ -12,7 +12,7 @@ Sections (``--only`` takes a comma-separated list; default all):
 ``target``    the issue's target setting (f = 0.25, 50 per segment), with segment flags
 ``e2e``       the engine against a real job (SQLite source, history, ``monitor.runner.Job``)
 
-Printing happens here only; the engine (:mod:`monitor.simulate`) prints nothing.
+Printing happens here only; the engine (:mod:`tests.sim.engine`) prints nothing.
 """
 
 from __future__ import annotations
@@ -33,7 +33,7 @@ if __package__ in (None, ""):  # run as a file: python tests/sim/run.py
 
 import numpy as np  # noqa: E402
 
-from monitor.simulate import DISTRIBUTIONS, LOGNORMAL_SIGMA, Design, StreamSpec  # noqa: E402
+from tests.sim.engine import DISTRIBUTIONS, LOGNORMAL_SIGMA, Design, StreamSpec  # noqa: E402
 from tests.sim import experiments as ex  # noqa: E402
 
 SECTIONS = ("null", "mixed", "fisher", "power", "alarms", "delay", "target", "e2e")

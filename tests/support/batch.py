@@ -17,7 +17,7 @@ power sums), so the F statistics and differences agree with the per-metric routi
 to about 1e-12 relative on well-conditioned data; for data with many constant
 leading digits (NIST StRD SmLs07-09) use the per-metric routines, which carry the
 means' rounding error. The pairs' p-values come from the interpolation tables of
-:func:`monitor.stats.srange_table.srange_sf_fast` (one call for the whole batch):
+:func:`tests.support.srange_table.srange_sf_fast` (one call for the whole batch):
 within 1e-9 absolute and 1e-6 relative of the exact studentized range tail for tails
 above 1e-10, in practice ~1e-10 and ~1e-8.
 
@@ -44,7 +44,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special
 
-from .srange_table import srange_sf_fast
+from tests.support.srange_table import srange_sf_fast
 
 __all__ = ["BatchResult", "anova_tukey", "welch_games_howell"]
 

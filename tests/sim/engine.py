@@ -48,7 +48,7 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
-from .analysis import (
+from monitor.analysis import (
     MetricInput,
     MetricResult,
     SegmentInput,
@@ -58,10 +58,10 @@ from .analysis import (
     relevant_checks,
     run_omnibus,
 )
-from .config import JobConfig, parse_config
-from .events import Baseline, Event, derive_events, lookback
-from .stats import diagnostics, effects, omnibus
-from .stats.summary import Moments
+from monitor.config import JobConfig, parse_config
+from monitor.events import Baseline, Event, derive_events, lookback
+from monitor.stats import diagnostics, effects, omnibus
+from monitor.stats.summary import Moments
 
 log = logging.getLogger(__name__)
 

@@ -6,12 +6,12 @@
 for large vectors: the exact double integral is computed once per ``k`` on a
 few thousand nodes, and every later value is a short polynomial evaluation.
 Use it where many p-values are needed at once (the batch routines of
-:mod:`monitor.stats.batch`); the exact routine stays the reference and the
+:mod:`tests.support.batch`); the exact routine stays the reference and the
 place to go for quantiles and for accuracy beyond ~1e-10.
 
 Example
 -------
->>> from monitor.stats.srange_table import srange_sf_fast
+>>> from tests.support.srange_table import srange_sf_fast
 >>> p = srange_sf_fast([3.0, 4.0, 5.0], 3, [10.0, 24.7, float("inf")])
 >>> [round(float(x), 5) for x in p]
 [0.13498, 0.02396, 0.00118]
@@ -91,7 +91,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special
 
-from . import studentized as _exact
+from monitor.stats import studentized as _exact
 
 __all__ = ["srange_sf_fast"]
 
