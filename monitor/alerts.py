@@ -72,7 +72,7 @@ from typing import Any, Callable, Mapping, Protocol, Sequence
 
 from .clock import Clock
 from .config import CommandAlert, EmailAlert, JobConfig, LogAlert, WebhookAlert
-from .events import Event
+from .model import Event
 from .history import History, is_op
 from .ledger import RELAY_RESOURCE, Ledger
 

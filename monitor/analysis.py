@@ -35,17 +35,19 @@ from __future__ import annotations
 import logging
 import math
 import threading
-from dataclasses import dataclass, field, replace
+from dataclasses import replace
 from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
 import numpy as np
 
-from .config import JobConfig, MetricConfig
-from .stats.summary import Moments
+from .config import JobConfig
+from .model import (  # noqa: F401 - the shared vocabulary, re-exported for callers of this module
+    QUANTILE_KEYS, QUANTILE_LEVELS, Check, EffectSize, MetricInput, MetricResult, PairRow, QualityCounts,
+    SegmentInput, SegmentRow, Sensitivity,
+)
 
 if TYPE_CHECKING:
-    from .stats.diagnostics import Check
-    from .stats.effects import EffectSize
+    from .stats.summary import Moments
 
 # The statistical routines (monitor.stats.diagnostics and its siblings) bring in scipy:
 # about 65 MB and most of a second of start-up. They are imported by the functions that
@@ -79,11 +81,6 @@ def load_statistics_in_background() -> threading.Thread:
 POSTHOC_FOR = {"anova": "tukey-kramer", "welch": "games-howell", "kruskal": "dunn"}
 MANY_TO_ONE_FOR = {"anova": "dunnett", "welch": "games-howell", "kruskal": "dunn"}
 
-#: Per-segment quantiles kept for box plots: 5%, 25%, median, 75%, 95% (whiskers at 5% and 95%).
-QUANTILE_LEVELS = (0.05, 0.25, 0.50, 0.75, 0.95)
-QUANTILE_KEYS = ("q05", "q25", "q50", "q75", "q95")
-
-
 _LEVELS = np.array(QUANTILE_LEVELS)
 
 
@@ -104,206 +101,6 @@ def segment_quantiles(values: np.ndarray | None, *, presorted: np.ndarray | None
     from .stats import diagnostics
 
     return tuple(diagnostics.quantiles_of_sorted(presorted, _LEVELS).tolist())
-
-
-@dataclass(frozen=True)
-class QualityCounts:
-    """What the source found wrong with one metric's values in one period."""
-
-    rows: int = 0  # rows in the window with a segment value
-    null: int = 0  # NULL values
-    non_numeric: int = 0  # values that are not numbers (text in a numeric column)
-    non_finite: int = 0  # inf, -inf, NaN
-    out_of_domain: int = 0  # values the transform cannot take (<= 0 under log)
-
-    @property
-    def bad(self) -> int:
-        return self.null + self.non_numeric + self.non_finite + self.out_of_domain
-
-    @property
-    def bad_share(self) -> float:
-        return self.bad / self.rows if self.rows else 0.0
-
-    def to_json(self) -> dict[str, Any]:
-        return {
-            "rows": self.rows,
-            "null": self.null,
-            "non_numeric": self.non_numeric,
-            "non_finite": self.non_finite,
-            "out_of_domain": self.out_of_domain,
-            "bad_share": _num(self.bad_share),
-        }
-
-
-@dataclass(frozen=True)
-class Sensitivity:
-    """What Fisher's ANOVA could detect with this period's segment sizes.
-
-    ``min_f`` is the smallest Cohen's f detected with probability ``power`` at level
-    ``alpha``; ``min_diff`` the same in the metric's units (f times the pooled sd:
-    the sd of the segment means that would be detected). ``underpowered`` is set when
-    ``min_f`` exceeds ``threshold_f``, the practical threshold (``min_effect``
-    converted from omega squared, f = sqrt(w / (1 - w)); Cohen's medium f = 0.25
-    when ``min_effect`` is not set, common practice).
-    """
-
-    power: float
-    alpha: float
-    min_f: float
-    min_diff: float
-    threshold_f: float
-    underpowered: bool
-
-    def to_json(self) -> dict[str, Any]:
-        return {"power": self.power, "alpha": _num(self.alpha), "min_detectable_f": _num(self.min_f),
-                "min_detectable_diff": _num(self.min_diff), "threshold_f": _num(self.threshold_f),
-                "underpowered": self.underpowered}
-
-
-@dataclass(frozen=True)
-class SegmentInput:
-    """One segment's data for one metric: its summary and (optionally) its values."""
-
-    segment: str
-    moments: Moments
-    values: np.ndarray | None = None
-
-
-@dataclass(frozen=True)
-class MetricInput:
-    """Everything the analysis needs for one metric in one period."""
-
-    metric: MetricConfig
-    segments: tuple[SegmentInput, ...]
-    quality: QualityCounts = QualityCounts()
-    sample_size: int | None = None  # set when values are a sample, not all values
-
-
-@dataclass(frozen=True)
-class SegmentRow:
-    segment: str
-    n: int
-    mean: float
-    sd: float
-    flag: str | None = None
-    diff_vs_rest: float = math.nan  # descriptive: segment mean minus the mean of the other segments' records
-    above: int = 0  # other segments it is significantly above (in the post-hoc pairs)
-    below: int = 0
-    direction: str | None = None  # the pair verdict before the metric's significance gate
-    excluded: bool = False
-    quantiles: tuple[float, ...] = ()  # at QUANTILE_LEVELS; () when no values were available
-
-    def to_json(self) -> dict[str, Any]:
-        return {
-            "segment": self.segment,
-            "n": self.n,
-            "mean": _num(self.mean),
-            "sd": _num(self.sd),
-            "flag": self.flag,
-            "diff_vs_rest": _num(self.diff_vs_rest),
-            "above": self.above,
-            "below": self.below,
-            "excluded": self.excluded,
-            "quantiles": dict(zip(QUANTILE_KEYS, map(_num, self.quantiles))) if self.quantiles else None,
-        }
-
-
-@dataclass(frozen=True)
-class PairRow:
-    a: str
-    b: str
-    diff: float
-    p_adj: float
-    ci_low: float = math.nan
-    ci_high: float = math.nan
-    significant: bool = False
-    log_scale: bool = False  # diff is a difference of logs: report ratios too
-
-    def to_json(self) -> dict[str, Any]:
-        out = {
-            "a": self.a,
-            "b": self.b,
-            "diff": _num(self.diff),
-            "p_adj": _num(self.p_adj),
-            "significant": self.significant,
-            "ci_low": _num(self.ci_low),
-            "ci_high": _num(self.ci_high),
-        }
-        if self.log_scale:
-            # ratio of geometric means a/b and its simultaneous interval (same family as p_adj)
-            out["ratio"] = _num(_exp(self.diff))
-            out["ratio_low"] = _num(_exp(self.ci_low))
-            out["ratio_high"] = _num(_exp(self.ci_high))
-        return out
-
-
-@dataclass(frozen=True)
-class MetricResult:
-    """The verdict for one metric in one period (the contract's ``metrics[]`` entry)."""
-
-    metric: str
-    column: str
-    requested: str
-    method: str
-    method_reason: str
-    statistic: float
-    df: tuple[float, ...]
-    p_value: float
-    effect_size: EffectSize | None
-    segments: tuple[SegmentRow, ...]
-    pairs: tuple[PairRow, ...]
-    posthoc: str | None
-    assumptions: Mapping[str, Check]
-    quality: QualityCounts
-    note: str | None = None
-    q_value: float = math.nan
-    significant: bool = False
-    unit: str | None = None
-    sample_size: int | None = None
-    extra_effects: tuple[EffectSize, ...] = field(default=())
-    reference: str | None = None
-    relevant_checks: tuple[str, ...] = ()
-    sensitivity: Sensitivity | None = None
-    pair_level: float = math.nan  # the level pairs and flags were read at
-
-    @property
-    def computed(self) -> bool:
-        return math.isfinite(self.p_value)
-
-    @property
-    def flagged(self) -> dict[str, str]:
-        return {s.segment: s.flag for s in self.segments if s.flag}
-
-    def to_json(self) -> dict[str, Any]:
-        out: dict[str, Any] = {
-            "metric": self.metric,
-            "column": self.column,
-            "method": self.method,
-            "method_reason": self.method_reason,
-            "statistic": _num(self.statistic),
-            "df": [_num(d) for d in self.df],
-            "p_value": _num(self.p_value),
-            "q_value": _num(self.q_value),
-            "significant": self.significant,
-            "effect_size": _effect_json(self.effect_size),
-            "other_effect_sizes": [_effect_json(e) for e in self.extra_effects],
-            "posthoc": self.posthoc,
-            "pair_level": _num(self.pair_level),
-            "segments": [s.to_json() for s in self.segments],
-            "pairs": [p.to_json() for p in self.pairs],
-            "assumptions": {k: _check_json(c, k in self.relevant_checks) for k, c in self.assumptions.items()},
-            "data_quality": self.quality.to_json(),
-            "note": self.note,
-        }
-        if self.sensitivity is not None:
-            out["sensitivity"] = self.sensitivity.to_json()
-        if self.reference is not None:
-            out["reference"] = self.reference
-        if self.unit:
-            out["unit"] = self.unit
-        if self.sample_size is not None:
-            out["sample_size"] = self.sample_size
-        return out
 
 
 # ---------------------------------------------------------------- per metric
@@ -605,11 +402,7 @@ def analyse_period(inputs: Sequence[MetricInput], job: JobConfig) -> tuple[Metri
     return finalise([analyse_metric(d, job, len(inputs)) for d in inputs], job)
 
 
-# ---------------------------------------------------------------- JSON helpers
-
-
-def _exp(x: float) -> float:
-    return math.exp(x) if math.isfinite(x) else math.nan
+# ---------------------------------------------------------------- helpers
 
 
 def _f(x: Any) -> float:
@@ -617,33 +410,3 @@ def _f(x: Any) -> float:
         return float(x)
     except (TypeError, ValueError):
         return math.nan
-
-
-def _num(x: Any) -> float | int | None:
-    """A JSON-safe number: None for NaN/inf/None."""
-    if type(x) is float:  # the usual case, first
-        return x if math.isfinite(x) else None
-    if x is None:
-        return None
-    if isinstance(x, (bool, np.bool_)):
-        return bool(x)
-    if isinstance(x, (int, np.integer)):
-        return int(x)
-    v = float(x)
-    return v if math.isfinite(v) else None
-
-
-def _effect_json(e: EffectSize | None) -> dict[str, Any] | None:
-    if e is None:
-        return None
-    out: dict[str, Any] = {"name": e.name, "value": _num(e.value)}
-    if math.isfinite(e.ci_low) or math.isfinite(e.ci_high):
-        out["ci"] = [_num(e.ci_low), _num(e.ci_high)]
-    if e.note:
-        out["note"] = e.note
-    return out
-
-
-def _check_json(c: Check, relevant: bool) -> dict[str, Any]:
-    return {"value": _num(c.value), "threshold": _num(c.threshold), "passed": c.passed, "detail": c.detail,
-            "watched": relevant}

@@ -61,14 +61,13 @@ a period gives the same events, and changing K re-reads history under the new K.
 
 from __future__ import annotations
 
-import hashlib
 import logging
 import math
 from dataclasses import dataclass, field
 from typing import Any, Mapping, Protocol, Sequence
 
-from .analysis import MetricResult
 from .config import JobConfig
+from .model import Event, MetricResult  # noqa: F401 - Event re-exported for callers of this module
 
 log = logging.getLogger(__name__)
 
@@ -92,32 +91,6 @@ CHECK_NAMES = {
     "n_ratio": "size-ratio check",
     "outlier_share": "outlier check",
 }
-
-
-@dataclass(frozen=True)
-class Event:
-    """One event: a kind, where it happened, and a one-sentence message."""
-
-    kind: str
-    metric: str | None
-    segment: str | None
-    message: str
-    detail: Mapping[str, Any] = field(default_factory=dict)
-    subject: str = ""  # distinguishes events of one kind on the same metric/segment (e.g. the check name)
-
-    def key(self, job: str, period: str) -> str:
-        """A stable identity: the same event of the same period always has the same key."""
-        raw = "\x1f".join([job, period, self.kind, self.metric or "", self.segment or "", self.subject])
-        return hashlib.sha256(raw.encode()).hexdigest()[:32]
-
-    def to_json(self) -> dict[str, Any]:
-        return {
-            "kind": self.kind,
-            "metric": self.metric,
-            "segment": self.segment,
-            "message": self.message,
-            "detail": dict(self.detail),
-        }
 
 
 class StoredLike(Protocol):

@@ -46,10 +46,9 @@ import sqlalchemy as sa
 from sqlalchemy.engine import Engine
 from sqlalchemy.exc import SQLAlchemyError
 
-from .analysis import MetricResult
 from .db import one_line, redact
 from .errors import HistoryError
-from .events import Event
+from .model import Event, MetricResult
 from .periods import Period
 
 log = logging.getLogger(__name__)

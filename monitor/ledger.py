@@ -50,7 +50,7 @@ from sqlalchemy.exc import SQLAlchemyError
 from .clock import Clock
 from .db import one_line, redact
 from .errors import HistoryError, SegwatchError
-from .events import Event
+from .model import Event
 from .history import History, LeaseLost, _utc_naive, insert_missing, insert_op, iso_utc, leases_t, ledger_t, utc_aware
 
 __all__ = [

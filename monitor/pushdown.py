@@ -93,7 +93,7 @@ from sqlalchemy.sql.base import Executable
 from sqlalchemy.sql.elements import ClauseElement
 from sqlalchemy.sql.functions import FunctionElement
 
-from .analysis import QualityCounts
+from .model import QualityCounts
 from .config import MetricConfig
 from .db import SQLITE_MD5
 from .stats.summary import Moments

@@ -55,7 +55,7 @@ from typing import TYPE_CHECKING, Any, Callable, Mapping, Sequence
 from scipy import stats as sps
 
 from . import __version__, plots
-from .analysis import QUANTILE_KEYS
+from .model import QUANTILE_KEYS
 from .config import JobConfig, MetricConfig
 from .db import redact
 from .errors import SegwatchError, UsageError

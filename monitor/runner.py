@@ -29,13 +29,14 @@ from datetime import timedelta
 from typing import Any, Callable, Iterable
 
 from .alerts import RELAY_WAIT_SECONDS, RelayOutcome, build_sinks, op_channels, relay
-from .analysis import MetricResult, analyse_period, load_statistics_in_background
+from .analysis import analyse_period, load_statistics_in_background
 from .clock import Clock, SystemClock
 from .config import JobConfig, config_hash
 from .errors import SegwatchError
-from .events import Baseline, Event, derive_events, lookback
+from .events import Baseline, derive_events, lookback
 from .history import History, LeaseLost, iso_utc
 from .ledger import LEASE_SECONDS, Claim, Ledger, LedgerEntry, PeriodBusy
+from .model import Event, MetricResult
 from .periods import Period, latest_complete, parse_period, period_range
 from .source import Source
 

@@ -74,7 +74,7 @@ from .alerts import RelayOutcome
 from .clock import Clock
 from .config import JobConfig
 from .errors import PeriodError, UsageError
-from .events import Event
+from .model import Event
 from .history import utc_aware
 from .ledger import LEASE_SECONDS, LedgerEntry, PeriodBusy
 from .periods import Period, latest_complete, parse_period

@@ -50,7 +50,7 @@ from sqlalchemy.engine import Engine
 from sqlalchemy.exc import NoSuchTableError, SQLAlchemyError
 
 from . import pushdown
-from .analysis import MetricInput, QualityCounts, SegmentInput
+from .model import MetricInput, QualityCounts, SegmentInput
 from .config import JobConfig, MetricConfig, SourceConfig
 from .db import (
     check_server_version,

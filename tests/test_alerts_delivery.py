@@ -31,7 +31,7 @@ from monitor.alerts import CommandSink, EmailSink, LogSink, WebhookSink, backoff
 from monitor.cli import main  # noqa: E402
 from monitor.clock import FixedClock  # noqa: E402
 from monitor.config import EmailAlert, SmtpConfig  # noqa: E402
-from monitor.events import Event  # noqa: E402
+from monitor.model import Event  # noqa: E402
 from monitor.history import History  # noqa: E402
 from monitor.ledger import RELAY_RESOURCE, Ledger  # noqa: E402
 from monitor.periods import parse_period  # noqa: E402

@@ -12,11 +12,9 @@ from pathlib import Path
 
 import pytest
 
-from monitor.analysis import MetricResult, QualityCounts, SegmentRow
+from monitor.model import Check, EffectSize, MetricResult, QualityCounts, SegmentRow
 from monitor.config import parse_config
 from monitor.events import Baseline, derive_events
-from monitor.stats.diagnostics import Check
-from monitor.stats.effects import EffectSize
 
 
 @pytest.fixture()

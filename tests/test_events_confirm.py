@@ -17,11 +17,10 @@ from pathlib import Path
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from monitor.analysis import MetricResult, QualityCounts, SegmentRow
+from monitor.model import EffectSize, MetricResult, QualityCounts, SegmentRow
 from monitor.config import parse_config
 from monitor.events import Baseline, derive_events, lookback
 from monitor.history import StoredPeriod
-from monitor.stats.effects import EffectSize
 
 SEGS = ("A", "B", "C")
 

@@ -25,7 +25,7 @@ import sqlalchemy as sa
 
 from monitor.clock import FixedClock
 from monitor.config import load_config
-from monitor.events import Event
+from monitor.model import Event
 from monitor.history import History, LeaseLost, insert_missing, leases_t
 from monitor.ledger import RELAY_RESOURCE, Ledger, PeriodBusy, new_owner, owner_gone, retry_delay
 from monitor.periods import parse_period
@@ -327,7 +327,7 @@ def test_an_old_outbox_table_gains_the_backoff_column(history_url):
 def test_segment_and_pair_rows_are_stored_as_given_and_replaced_on_rerun(history):
     # store_period writes these rows with one driver-level executemany (positional on
     # SQLite, named on PostgreSQL); every column must land in its own place, NaN as NULL
-    from monitor.analysis import MetricResult, PairRow, QualityCounts, SegmentRow
+    from monitor.model import MetricResult, PairRow, QualityCounts, SegmentRow
     from monitor.history import pair_results, segment_results
 
     period = parse_period("week", "2026-W11", "UTC")

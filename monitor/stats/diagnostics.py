@@ -49,6 +49,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 from scipy import stats
 
+from monitor.model import Check
 from monitor.stats.posthoc import (
     _as_float_groups,
     _check_groups,
@@ -98,31 +99,6 @@ SMALL_SEGMENT_N = 30
 #: |skewness| above this in a small segment is "strong" (common practice).
 FISHER_SIZE_RATIO = 1.5  # Fisher's ANOVA only when the largest/smallest segment size is at most this
 SKEWNESS_LIMIT = 2.0
-
-
-@dataclass(frozen=True)
-class Check:
-    """The outcome of one assumption check.
-
-    Attributes
-    ----------
-    name : str
-        One of :data:`CHECK_NAMES`.
-    value : float
-        The measured value (a p-value, a ratio or a share); NaN if not computed.
-    threshold : float
-        What ``value`` was held against.
-    passed : bool or None
-        Whether the assumption looks tenable; None if it could not be checked.
-    detail : str
-        One plain sentence a person can read.
-    """
-
-    name: str
-    value: float
-    threshold: float
-    passed: bool | None
-    detail: str
 
 
 @dataclass(frozen=True)

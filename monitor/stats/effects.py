@@ -24,11 +24,11 @@ from __future__ import annotations
 
 import logging
 import math
-from dataclasses import dataclass
 
 import numpy as np
 from scipy import optimize, special
 
+from monitor.model import EffectSize
 from monitor.stats.omnibus import OmnibusResult
 
 __all__ = [
@@ -44,29 +44,6 @@ __all__ = [
 logger = logging.getLogger(__name__)
 
 _NAN = float("nan")
-
-
-@dataclass(frozen=True)
-class EffectSize:
-    """One effect size, optionally with a confidence interval.
-
-    Attributes
-    ----------
-    name : str
-        ``"eta_squared"``, ``"omega_squared"``, ``"cohens_f"`` or ``"epsilon_squared"``.
-    value : float
-        Point estimate; NaN if it cannot be computed.
-    ci_low, ci_high : float
-        Confidence limits (NaN where no interval is computed).
-    note : str or None
-        Why ``value`` is NaN, or a caveat about it.
-    """
-
-    name: str
-    value: float
-    ci_low: float = _NAN
-    ci_high: float = _NAN
-    note: str | None = None
 
 
 def _anova_note(res: OmnibusResult, name: str) -> str | None:
