@@ -1,6 +1,6 @@
 """Alert sinks and the outbox relay that feeds them.
 
-Events reach people only through the outbox (see :mod:`monitor.history`): the
+Events reach people only through the outbox (see :mod:`monitor.store.history`): the
 period's results, its events and one outbox row per (event, channel) are committed
 together; afterwards :func:`relay` reads the due rows of each channel, hands them to
 the channel's sink one period at a time, and marks them
@@ -19,7 +19,7 @@ sends an ``Idempotency-Key`` header and the mail a ``Message-ID`` derived from t
 keys of the batch (stable across retries of the same batch); the log sink skips
 lines whose key the file already holds, so a crash between writing and marking never
 leaves a line twice. One process at a time delivers a job's alerts: :func:`relay`
-holds the job's ``~relay`` lease (see :mod:`monitor.ledger`).
+holds the job's ``~relay`` lease (see :mod:`monitor.store.ledger`).
 
 What counts as temporary:
 
@@ -72,9 +72,10 @@ from typing import Any, Callable, Mapping, Protocol, Sequence
 
 from .clock import Clock
 from .config import CommandAlert, EmailAlert, JobConfig, LogAlert, WebhookAlert
+from .errors import DeliveryError
 from .model import Event
-from .history import History, is_op
-from .ledger import RELAY_RESOURCE, Ledger
+from .store.history import History, is_op
+from .store.ledger import RELAY_RESOURCE, Ledger
 
 log = logging.getLogger(__name__)
 
@@ -88,18 +89,6 @@ BACKOFF_CAP_SECONDS = 6 * 3600.0
 RELAY_WAIT_SECONDS = 30.0
 #: Longest ``Retry-After`` honoured (seconds).
 RETRY_AFTER_CAP_SECONDS = 24 * 3600.0
-
-
-class DeliveryError(Exception):
-    """A sink could not deliver; ``temporary`` says whether a retry may succeed.
-
-    ``retry_after`` (seconds) is the receiver's own wish (HTTP ``Retry-After``), if any.
-    """
-
-    def __init__(self, message: str, temporary: bool, retry_after: float | None = None):
-        super().__init__(message)
-        self.temporary = temporary
-        self.retry_after = retry_after
 
 
 class Sink(Protocol):

@@ -18,8 +18,7 @@ from typing import Any, Sequence, TextIO
 
 from . import __version__
 from .config import load_config
-from .errors import SegwatchError, UsageError
-from .ledger import PeriodBusy
+from .errors import PeriodBusy, SegwatchError, UsageError
 from .runner import Job, PeriodReport
 
 log = logging.getLogger(__name__)
@@ -264,7 +263,7 @@ def cmd_alerts(args: argparse.Namespace, out: TextIO) -> int:
 
 
 def cmd_report(args: argparse.Namespace, out: TextIO) -> int:
-    from .report import write_report  # matplotlib is imported only when a report is written
+    from .present.report import write_report  # matplotlib is imported only when a report is written
 
     if args.periods is not None and args.periods < 1:
         raise UsageError(f"--periods: give a whole number of at least 1, not {args.periods}")

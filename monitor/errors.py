@@ -3,6 +3,21 @@
 Every message is one line a user can act on: it names the place (file, key path,
 table, column or URL) and what to do about it. The command line prints
 ``Error: <message>`` and exits with :attr:`SegwatchError.exit_code`.
+
+The tree (every exception class of the package is here)::
+
+    Exception
+    ├── SegwatchError            exit 1: an expected failure, one-line message
+    │   ├── UsageError           exit 2: the command line was called wrongly
+    │   │   ├── ConfigError      the config file is missing or invalid
+    │   │   └── PeriodError      a period identifier is malformed or of the wrong kind
+    │   ├── SourceError          the source database could not be reached or queried
+    │   ├── HistoryError         the history database could not be reached, created or written
+    │   │   └── LeaseLost        the run's lease was taken over before it stored its results
+    │   ├── AlertError           an alert could not be delivered
+    │   └── PeriodBusy           exit 0: another process holds the period's lease
+    └── DeliveryError            one sink's delivery attempt failed (temporary or not); the
+                                 relay turns it into a retry or a dead letter, never raised out
 """
 
 from __future__ import annotations
@@ -38,3 +53,25 @@ class HistoryError(SegwatchError):
 
 class AlertError(SegwatchError):
     """An alert could not be delivered."""
+
+
+class LeaseLost(HistoryError):
+    """The run's lease was taken over by another process before it could store its results."""
+
+
+class PeriodBusy(SegwatchError):
+    """Another process holds the period's lease; this run did not start (exit code 0)."""
+
+    exit_code = 0
+
+
+class DeliveryError(Exception):
+    """A sink could not deliver; ``temporary`` says whether a retry may succeed.
+
+    ``retry_after`` (seconds) is the receiver's own wish (HTTP ``Retry-After``), if any.
+    """
+
+    def __init__(self, message: str, temporary: bool, retry_after: float | None = None):
+        super().__init__(message)
+        self.temporary = temporary
+        self.retry_after = retry_after

@@ -46,7 +46,7 @@ verdict for it and its segments, and a period without records of a segment gives
 verdict for that segment: such periods neither count towards a run nor break one.
 
 The announced state is *derived*, not stored: :meth:`Baseline.from_history` replays
-the rule over the stored verdicts (:class:`~monitor.history.StoredPeriod` entries,
+the rule over the stored verdicts (:class:`~monitor.store.history.StoredPeriod` entries,
 newest first, as ``History.recent`` returns them), starting from "not announced" at
 the oldest period it is given. The replay is exact when the periods given reach back
 to the job's first period or to a run of K equal verdicts before the current period
@@ -95,7 +95,7 @@ CHECK_NAMES = {
 
 class StoredLike(Protocol):
     """What :meth:`Baseline.from_history` reads of a stored period
-    (:class:`monitor.history.StoredPeriod` has these fields)."""
+    (:class:`monitor.store.history.StoredPeriod` has these fields)."""
 
     period: str
     segments: Sequence[str]

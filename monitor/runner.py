@@ -10,8 +10,8 @@
     for event in report.events:
         print(event.kind, event.message)
 
-Every run goes through the period ledger (:mod:`monitor.ledger`): it first claims the
-period's lease (another process holding it raises :class:`~monitor.ledger.PeriodBusy`,
+Every run goes through the period ledger (:mod:`monitor.store.ledger`): it first claims the
+period's lease (another process holding it raises :class:`~monitor.errors.PeriodBusy`,
 exit code 0: nothing started), marks the period ``running``, renews the lease while
 it computes, and stores results, events, outbox rows and the ``done`` mark in one
 transaction that also checks the lease is still ours. A failure on the way (source
@@ -32,10 +32,10 @@ from .alerts import RELAY_WAIT_SECONDS, RelayOutcome, build_sinks, op_channels, 
 from .analysis import analyse_period, load_statistics_in_background
 from .clock import Clock, SystemClock
 from .config import JobConfig, config_hash
-from .errors import SegwatchError
+from .errors import LeaseLost, PeriodBusy, SegwatchError
 from .events import Baseline, derive_events, lookback
-from .history import History, LeaseLost, iso_utc
-from .ledger import LEASE_SECONDS, Claim, Ledger, LedgerEntry, PeriodBusy
+from .store.history import History, iso_utc
+from .store.ledger import LEASE_SECONDS, Claim, Ledger, LedgerEntry
 from .model import Event, MetricResult
 from .periods import Period, latest_complete, parse_period, period_range
 from .source import Source
@@ -99,7 +99,7 @@ class Job:
 
     def _report_attachment(self, period: str) -> tuple[str, str]:
         """The stored period's HTML report, for email digests (``report.attach``)."""
-        from .report import report_html  # draws with matplotlib: imported only when needed
+        from .present.report import report_html  # draws with matplotlib: imported only when needed
 
         return f"{self.config.job}-{period}.html", report_html(self.history, self.config, period)
 
@@ -143,7 +143,7 @@ class Job:
     def run(self, period: Period | str | None = None, *, only_if_owed: bool = False) -> PeriodReport | None:
         """Compute one period, store it (replacing an earlier run of it) and deliver its alerts.
 
-        Raises :class:`~monitor.ledger.PeriodBusy` when another process holds the
+        Raises :class:`~monitor.errors.PeriodBusy` when another process holds the
         period. With ``only_if_owed`` (the scheduler's catch-up), a period that became
         done (and settled) meanwhile is left alone and None is returned.
         """

@@ -1,6 +1,6 @@
 """``segwatch serve``: run jobs on their cron schedule, catching up whatever is owed.
 
-What is owed comes from the period ledger (:mod:`monitor.ledger`), never from the
+What is owed comes from the period ledger (:mod:`monitor.store.ledger`), never from the
 scheduler's state: APScheduler only says *when* to look. Three pieces:
 
 :func:`due_periods` (pure)
@@ -25,8 +25,7 @@ scheduler's state: APScheduler only says *when* to look. Three pieces:
     fails (later periods compare against it, so they wait) or that another process
     holds (it is left to that process; the next tick looks again). Between periods it
     honours a stop request. After each computed period with rows it writes the
-    job's report when ``report.path`` is set (through ``monitor.report.write_report``
-    when that module exists). A *sweep* tick (``sweep=True``) starts nothing new: it
+    job's report when ``report.path`` is set (:func:`monitor.present.report.write_report`). A *sweep* tick (``sweep=True``) starts nothing new: it
     retries failed periods whose backoff is over, finishes periods left pending or
     interrupted, and delivers alerts whose backoff is over.
 
@@ -51,13 +50,12 @@ period being computed finish, starts no other, and waits for the running ticks.
 
 from __future__ import annotations
 
-import importlib
 import logging
 import threading
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
-from typing import Callable, Mapping, Sequence
+from typing import Mapping, Sequence
 
 from apscheduler.events import (
     EVENT_JOB_ERROR,
@@ -71,12 +69,12 @@ from apscheduler.triggers.cron import CronTrigger
 from apscheduler.triggers.interval import IntervalTrigger
 
 from .alerts import RelayOutcome
-from .clock import Clock
+from .clock import Clock, SystemClock
 from .config import JobConfig
-from .errors import PeriodError, UsageError
+from .errors import PeriodBusy, PeriodError, UsageError
 from .model import Event
-from .history import utc_aware
-from .ledger import LEASE_SECONDS, LedgerEntry, PeriodBusy
+from .store.history import utc_aware
+from .store.ledger import LEASE_SECONDS, LedgerEntry
 from .periods import Period, latest_complete, parse_period
 from .runner import Job
 
@@ -126,7 +124,7 @@ def due_periods(config: JobConfig, ledger: Mapping[str, LedgerEntry], now: datet
     Parameters
     ----------
     ledger : mapping of period identifier to LedgerEntry
-        The job's ledger (:meth:`monitor.ledger.Ledger.entries`, or :func:`ledger_state`).
+        The job's ledger (:meth:`monitor.store.ledger.Ledger.entries`, or :func:`ledger_state`).
         Identifiers that are not periods of the job's kind (the config changed) are ignored.
     new : bool
         Include catch-up of periods the ledger has never seen (a scheduled tick).
@@ -241,27 +239,18 @@ def tick(job: Job, now: datetime | None = None, *, stop: threading.Event | None 
 
 
 def write_report(job: Job, period: Period) -> Path | None:
-    """Write the job's report for ``period`` when ``report.path`` is set and
-    ``monitor.report.write_report`` exists; a failure is logged, never raised."""
+    """Write the job's report for ``period`` when ``report.path`` is set
+    (:func:`monitor.present.report.write_report`); a failure is logged, never raised."""
     target = job.config.report.path
     if target is None:
         return None
-    name = f"{__package__}.report"
-    try:
-        report_module = importlib.import_module(name)
-    except ModuleNotFoundError as exc:
-        if exc.name == name:
-            log.debug("job %s: no report module; report.path ignored", job.config.job)
-            return None
-        log.error("job %s: the report module cannot be loaded: %s", job.config.job, exc)
-        return None
-    write: Callable | None = getattr(report_module, "write_report", None)
-    if write is None:
-        log.debug("job %s: monitor.report has no write_report; report.path ignored", job.config.job)
-        return None
     out = Path(str(target).replace("{period}", period.ident))
     try:
-        write(job, period, out)
+        # imported here, not at the top: the report draws with matplotlib, which a serve
+        # process without report.path never needs
+        from .present import report
+
+        report.write_report(job, period, out)
     except Exception as exc:  # noqa: BLE001 - a report never fails the run
         log.error("job %s: report for %s not written to %s: %s", job.config.job, period.ident, out, exc)
         return None
@@ -277,8 +266,8 @@ class Service:
     configs : sequence of JobConfig
         Each must have a ``schedule``; job names must differ.
     clock : Clock, optional
-        For the jobs' timestamps and lease expiry (the scheduler itself runs on the
-        wall clock).
+        For the jobs' timestamps and lease expiry, and the times the service
+        schedules from (APScheduler's own waiting runs on the wall clock).
     retry_minutes : float
         Interval of the sweep (retries of failed periods and of alerts in backoff).
     """
@@ -298,7 +287,8 @@ class Service:
             seen[cfg.job] = cfg.path
         if not retry_minutes > 0:
             raise UsageError(f"--retry-minutes: must be more than 0 (given: {retry_minutes})")
-        self.jobs = {cfg.job: Job(cfg, clock=clock, lease_seconds=lease_seconds, relay_wait=0.0) for cfg in configs}
+        self.clock = clock or SystemClock()
+        self.jobs = {cfg.job: Job(cfg, clock=self.clock, lease_seconds=lease_seconds, relay_wait=0.0) for cfg in configs}
         self.retry_minutes = retry_minutes
         self.stop_event = threading.Event()
         self._locks = {name: threading.Lock() for name in self.jobs}
@@ -318,7 +308,7 @@ class Service:
     def start(self, catch_up: bool = True) -> None:
         """Start the scheduler; with ``catch_up``, every job ticks right away."""
         if catch_up:
-            now = datetime.now(UTC)
+            now = self.clock.now().astimezone(UTC)
             for name in self.jobs:
                 self.scheduler.modify_job(f"tick:{name}", next_run_time=now)
         self.scheduler.start()
@@ -326,7 +316,7 @@ class Service:
     def next_ticks(self) -> dict[str, datetime | None]:
         """When each job's next scheduled tick is due (after the start-up catch-up)."""
         out = {}
-        now = datetime.now(UTC)
+        now = self.clock.now().astimezone(UTC)
         for name, job in self.jobs.items():
             trigger = CronTrigger.from_crontab(job.config.schedule, timezone=UTC)
             out[name] = trigger.get_next_fire_time(None, now)
@@ -378,7 +368,7 @@ class Service:
     def record_skipped(self, name: str, times: Sequence[datetime]) -> None:
         """Log and store ``op_run_skipped`` for scheduled ticks of ``name`` that could not start."""
         job = self.jobs[name]
-        for when in times or [datetime.now(UTC)]:
+        for when in times or [self.clock.now()]:
             when = when.astimezone(UTC)
             period = closed_by(job.config, when)
             log.warning("job %s: the run scheduled at %s was skipped: the previous one is still running",

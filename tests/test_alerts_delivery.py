@@ -32,8 +32,8 @@ from monitor.cli import main  # noqa: E402
 from monitor.clock import FixedClock  # noqa: E402
 from monitor.config import EmailAlert, SmtpConfig  # noqa: E402
 from monitor.model import Event  # noqa: E402
-from monitor.history import History  # noqa: E402
-from monitor.ledger import RELAY_RESOURCE, Ledger  # noqa: E402
+from monitor.store.history import History  # noqa: E402
+from monitor.store.ledger import RELAY_RESOURCE, Ledger  # noqa: E402
 from monitor.periods import parse_period  # noqa: E402
 
 T0 = datetime(2026, 3, 16, 6, 0, tzinfo=timezone.utc)

@@ -30,7 +30,8 @@ import numpy as np
 import pytest
 import sqlalchemy as sa
 
-from monitor import alerts, history, runner, source
+from monitor import alerts, runner, source
+from monitor.store import history
 from monitor.cli import main
 
 ctx = multiprocessing.get_context("fork")

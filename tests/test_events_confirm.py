@@ -20,7 +20,7 @@ from hypothesis import strategies as st
 from monitor.model import EffectSize, MetricResult, QualityCounts, SegmentRow
 from monitor.config import parse_config
 from monitor.events import Baseline, derive_events, lookback
-from monitor.history import StoredPeriod
+from monitor.store.history import StoredPeriod
 
 SEGS = ("A", "B", "C")
 

@@ -26,8 +26,9 @@ import sqlalchemy as sa
 from monitor.clock import FixedClock
 from monitor.config import load_config
 from monitor.model import Event
-from monitor.history import History, LeaseLost, insert_missing, leases_t
-from monitor.ledger import RELAY_RESOURCE, Ledger, PeriodBusy, new_owner, owner_gone, retry_delay
+from monitor.errors import LeaseLost, PeriodBusy
+from monitor.store.history import History, insert_missing, leases_t
+from monitor.store.ledger import RELAY_RESOURCE, Ledger, new_owner, owner_gone, retry_delay
 from monitor.periods import parse_period
 from monitor.runner import Job
 
@@ -328,7 +329,7 @@ def test_segment_and_pair_rows_are_stored_as_given_and_replaced_on_rerun(history
     # store_period writes these rows with one driver-level executemany (positional on
     # SQLite, named on PostgreSQL); every column must land in its own place, NaN as NULL
     from monitor.model import MetricResult, PairRow, QualityCounts, SegmentRow
-    from monitor.history import pair_results, segment_results
+    from monitor.store.history import pair_results, segment_results
 
     period = parse_period("week", "2026-W11", "UTC")
     segs = (SegmentRow("A", 30, 20.5, 3.25, flag="high"), SegmentRow("B", 2, float("nan"), float("nan")),

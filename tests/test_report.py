@@ -40,7 +40,7 @@ from monitor.analysis import QUANTILE_KEYS, QUANTILE_LEVELS, SegmentRow, segment
 from monitor.cli import main
 from monitor.config import load_config
 from monitor.errors import PeriodError, UsageError
-from monitor.report import collect, render_html, render_report, t_interval, write_report
+from monitor.present.report import collect, render_html, render_report, t_interval, write_report
 from monitor.runner import Job
 
 ROOT = Path(__file__).resolve().parents[1]

@@ -30,7 +30,7 @@ from apscheduler.triggers.cron import CronTrigger
 from monitor.clock import FixedClock
 from monitor.config import load_config, parse_config
 from monitor.errors import UsageError
-from monitor.ledger import Ledger, LedgerEntry
+from monitor.store.ledger import Ledger, LedgerEntry
 from monitor.periods import latest_complete, parse_period
 from monitor.runner import Job
 from monitor.scheduler import Service, due_periods, tick
@@ -311,24 +311,38 @@ def test_stop_request_is_honoured_between_periods(tmp_path):
 
 
 def test_report_is_written_after_each_scheduled_period(tmp_path, monkeypatch):
-    import types
+    from monitor.present import report
 
     cfg = load_config(_project(tmp_path, extra="report: {path: 'reports/{period}.html'}\n"))
     calls = []
-    fake = types.ModuleType("monitor.report")  # stands in for the report engineer's module
-    fake.write_report = lambda job, period, out: calls.append((period.ident, out))
-    monkeypatch.setitem(sys.modules, "monitor.report", fake)
+    monkeypatch.setattr(report, "write_report", lambda job, period, out: calls.append((period.ident, out)))
     with Job(cfg, clock=FixedClock(datetime(2026, 3, 2, 6, tzinfo=UTC))) as job:
         tick(job)
     assert calls == [("2026-W09", tmp_path / "reports" / "2026-W09.html")]
 
 
-def test_missing_report_module_is_skipped(tmp_path, monkeypatch):
+def test_a_report_that_fails_is_logged_and_the_period_still_counts(tmp_path, monkeypatch, caplog):
+    from monitor.present import report
+
+    def fail(job, period, out):
+        raise OSError("disk full")
+
     cfg = load_config(_project(tmp_path, extra="report: {path: 'r.html'}\n"))
-    monkeypatch.setitem(sys.modules, "monitor.report", None)  # as if the module did not exist
+    monkeypatch.setattr(report, "write_report", fail)
     with Job(cfg, clock=FixedClock(datetime(2026, 3, 2, 6, tzinfo=UTC))) as job:
         assert tick(job).computed == ("2026-W09",)
     assert not (tmp_path / "r.html").exists()
+    assert "report for 2026-W09 not written to" in caplog.text and "disk full" in caplog.text
+
+
+def test_the_service_schedules_from_its_injected_clock(tmp_path):
+    cfg = load_config(_project(tmp_path))
+    service = Service([cfg], clock=FixedClock(datetime(2026, 3, 4, 12, 30, tzinfo=UTC)))
+    try:
+        # schedule "0 6 * * mon" (the test project's): the next Monday 06:00 after the clock's now
+        assert service.next_ticks() == {"hubs": datetime(2026, 3, 9, 6, tzinfo=UTC)}
+    finally:
+        service.shutdown()
 
 
 # ------------------------------------------------------------------ the service

@@ -349,7 +349,7 @@ def analyse_gated(inputs: Sequence[MetricInput], job: JobConfig) -> tuple[Metric
 
 @dataclass(frozen=True)
 class _Stored:
-    """One simulated stored period (the fields of :class:`monitor.history.StoredPeriod`)."""
+    """One simulated stored period (the fields of :class:`monitor.store.history.StoredPeriod`)."""
 
     period: str
     segments: tuple[str, ...]

@@ -1,6 +1,6 @@
 """The report's pictures, drawn with matplotlib and returned as inline SVG text.
 
-Three pictures per metric (see :mod:`monitor.report` for what they mean):
+Three pictures per metric (see :mod:`monitor.present.report` for what they mean):
 
 * :func:`box_svg` — the segments of one period side by side, one box each;
 * :func:`trend_svg` — each segment's mean with its 95% interval over the recent

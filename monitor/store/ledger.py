@@ -1,6 +1,6 @@
 """The period ledger and leases: what is owed, what is running, and who may run it.
 
-Two tables in the history database (defined in :mod:`monitor.history`):
+Two tables in the history database (defined in :mod:`monitor.store.history`):
 
 ``sw_ledger``
     One row per (job, period). ``pending`` (owed: registered by a scheduler tick) →
@@ -21,7 +21,7 @@ expired, or when its owner ran on this host and that process is gone (so a crash
 run does not block the next one for a whole lease). Anything else loses, and the
 loser learns who holds the lease and until when. A long run renews its lease from a
 heartbeat thread. The final store of a period checks, in its own transaction, that
-the lease is still ours and releases it (:func:`monitor.history.finish_period`), so
+the lease is still ours and releases it (:func:`monitor.store.history.finish_period`), so
 two processes can never both commit a period, even after a takeover.
 
 A takeover is an operational event (``op_lease_taken_over``), stored in the history
@@ -47,11 +47,11 @@ from typing import Iterator, Mapping, Sequence
 import sqlalchemy as sa
 from sqlalchemy.exc import SQLAlchemyError
 
-from .clock import Clock
-from .db import one_line, redact
-from .errors import HistoryError, SegwatchError
-from .model import Event
-from .history import History, LeaseLost, _utc_naive, insert_missing, insert_op, iso_utc, leases_t, ledger_t, utc_aware
+from ..clock import Clock
+from ..db import one_line, redact
+from ..errors import HistoryError, LeaseLost, PeriodBusy
+from ..model import Event
+from .history import History, _utc_naive, insert_missing, insert_op, iso_utc, leases_t, ledger_t, utc_aware
 
 __all__ = [
     "LEASE_SECONDS",
@@ -77,12 +77,6 @@ STATES = ("pending", "running", "done", "failed")
 #: Backoff before a failed period is retried by the serve sweep: 5 min, doubling, at most 6 h.
 RETRY_BASE_SECONDS = 300.0
 RETRY_MAX_SECONDS = 6 * 3600.0
-
-
-class PeriodBusy(SegwatchError):
-    """Another process holds the period's lease; this run did not start (exit code 0)."""
-
-    exit_code = 0
 
 
 @dataclass(frozen=True)

@@ -3,7 +3,7 @@
 ::
 
     from monitor.config import load_config
-    from monitor.report import write_report
+    from monitor.present.report import write_report
     from monitor.runner import Job
 
     with Job(load_config("configs/demo.yaml")) as job:
@@ -31,7 +31,7 @@ What is on the page
    adjusted p-values (a one-column table for a many-to-one design).
 
 The file holds no scripts and no external references: styles are inline, pictures
-are inline SVG (see :mod:`monitor.plots`), fonts are the reader's system fonts, and a
+are inline SVG (see :mod:`monitor.present.plots`), fonts are the reader's system fonts, and a
 Content-Security-Policy meta tag forbids the browser to fetch anything.
 
 Intervals over time are ``mean ± t(0.975, n-1) · sd / sqrt(n)``, the two-sided 95%
@@ -50,21 +50,29 @@ import tempfile
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Callable, Mapping, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Mapping, Protocol, Sequence
 
 from scipy import stats as sps
 
-from . import __version__, plots
-from .model import QUANTILE_KEYS
-from .config import JobConfig, MetricConfig
-from .db import redact
-from .errors import SegwatchError, UsageError
-from .events import CHECK_NAMES
-from .periods import Period, parse_period
+from .. import __version__
+from . import plots
+from ..model import QUANTILE_KEYS
+from ..config import JobConfig, MetricConfig
+from ..db import redact
+from ..errors import SegwatchError, UsageError
+from ..events import CHECK_NAMES
+from ..periods import Period, parse_period
 
-if TYPE_CHECKING:  # the runner sits above this module; only its type is needed here
-    from .history import History
-    from .runner import Job
+if TYPE_CHECKING:
+    from ..store.history import History
+
+
+class JobLike(Protocol):
+    """What the report needs of a job (a :class:`monitor.runner.Job` has these): its
+    config and its history. The runner sits above this module and is never imported."""
+
+    config: JobConfig
+    history: "History"
 
 log = logging.getLogger(__name__)
 
@@ -173,12 +181,12 @@ def report_html(history: "History", config: JobConfig, period: Period | str | No
     return render_html(collect(history, config, period, periods))
 
 
-def render_report(job: "Job", period: Period | str | None = None, periods: int | None = None) -> str:
+def render_report(job: JobLike, period: Period | str | None = None, periods: int | None = None) -> str:
     """The report of ``job``'s stored ``period`` (None: the latest stored) as HTML text."""
     return report_html(job.history, job.config, period, periods)
 
 
-def write_report(job: "Job", period: Period | str | None, out: Path, periods: int | None = None) -> Path:
+def write_report(job: JobLike, period: Period | str | None, out: Path, periods: int | None = None) -> Path:
     """Write the report to ``out`` (replacing it atomically) and return the path.
 
     ``periods`` is how many stored periods the pictures over time cover (default:

@@ -11,7 +11,7 @@ SQLAlchemy URL works; the default is a SQLite file.
 * ``sw_outbox`` — one row per (event, alert channel): pending, sent or dead, with the
   number of attempts, the last error and when the next attempt is due (backoff).
 * ``sw_ledger`` — one row per (job, period): pending → running → done / failed, with
-  attempts, last error and timestamps (see :mod:`monitor.ledger`).
+  attempts, last error and timestamps (see :mod:`monitor.store.ledger`).
 * ``sw_leases`` — who may compute a period (or deliver a job's alerts) right now:
   owner ``host:pid:uuid`` and an expiry; claimed with a conditional insert/update.
 
@@ -46,19 +46,16 @@ import sqlalchemy as sa
 from sqlalchemy.engine import Engine
 from sqlalchemy.exc import SQLAlchemyError
 
-from .db import one_line, redact
-from .errors import HistoryError
-from .model import Event, MetricResult
-from .periods import Period
+from ..db import one_line, redact
+from ..errors import HistoryError, LeaseLost
+from ..model import Event, MetricResult
+from ..periods import Period
 
 log = logging.getLogger(__name__)
 
 #: Prefix of operational event kinds (never one of the contract's event kinds).
 OP_PREFIX = "op_"
 
-
-class LeaseLost(HistoryError):
-    """The run's lease was taken over by another process before it could store its results."""
 
 metadata = sa.MetaData()
 _SCHEMA_LOCK = threading.RLock()
