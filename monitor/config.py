@@ -49,6 +49,7 @@ from apscheduler.triggers.cron import CronTrigger
 from sqlalchemy.engine import make_url
 from sqlalchemy.exc import ArgumentError
 
+from monitor import engines
 from monitor.errors import ConfigError
 
 __all__ = [
@@ -771,7 +772,7 @@ def _db_url(r: _Reader, section: dict, key: str, path: str, default: Any = _REQU
     except ArgumentError:
         r.fail(_join(path, key), "is not a database URL", text, accepted)
     database = url.database
-    if url.get_backend_name() not in ("sqlite", "duckdb") or not database or ":" in database:
+    if not engines.get(url.get_backend_name()).file_urls or not database or ":" in database:
         return text  # a server, an in-memory database, or a file: / md: URI
     return url.set(database=str(r.folder_path(database))).render_as_string(hide_password=False)
 

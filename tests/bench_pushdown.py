@@ -167,7 +167,8 @@ IN_PROCESS = textwrap.dedent("""
 
 AGGREGATE = textwrap.dedent("""
     import sys, time
-    from monitor import pushdown, source
+    from monitor.source import pushdown
+    from monitor.source import reader as source
     from monitor.config import load_config
     from monitor.periods import parse_period
     from monitor.source import Source
@@ -195,8 +196,8 @@ PULL = textwrap.dedent("""
     import pandas as pd, sqlalchemy as sa
     from scipy import stats
     url, metrics, engine = sys.argv[1], int(sys.argv[2]), sys.argv[3]
-    from monitor.db import make_engine
-    eng = make_engine(url, read_only=True)
+    from monitor.engines import create_engine
+    eng = create_engine(url, "source", read_only=True)
     cols = ", ".join(f"m{j}" for j in range(metrics))
     if engine == "sqlite":
         where = "datetime(ts) >= '2026-03-02 00:00:00' AND datetime(ts) < '2026-03-09 00:00:00'"

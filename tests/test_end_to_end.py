@@ -214,7 +214,7 @@ def test_missing_table_lists_tables(project: Path, capsys):
 
 
 def test_unreachable_source_is_run_failure(project: Path, capsys, monkeypatch):
-    monkeypatch.setattr("monitor.source.RETRY_BASE_SECONDS", 0.0)
+    monkeypatch.setattr("monitor.source.reader.RETRY_BASE_SECONDS", 0.0)
     cfg = project / "job.yaml"
     cfg.write_text(cfg.read_text().replace("sqlite:///src.sqlite", "sqlite:///missing/dir/src.sqlite"))
     assert main(["run", str(cfg), "--period", "2026-W10"]) == 1

@@ -395,7 +395,7 @@ def test_segments_far_from_the_shift_are_summed_again_with_their_own(target, tmp
 
 
 def _md5_sample(rows: list[dict], cap: int, seed: int) -> dict[str, set[int]]:
-    """The rule of monitor.sampling, computed independently with hashlib."""
+    """The rule of monitor.source.sampling, computed independently with hashlib."""
     # reference: Python hashlib.md5 of "<id>:<seed>", the cap smallest per segment
     by_seg: dict[str, list[tuple[str, int]]] = {}
     for r in rows:
@@ -408,7 +408,7 @@ def _md5_sample(rows: list[dict], cap: int, seed: int) -> dict[str, set[int]]:
 
 def _server_hash_sample(target: Target, table: str, rows: list[dict], cap: int, seed: int
                         ) -> dict[str, set[int]]:
-    """The rule of monitor.sampling with PostgreSQL's hashint8extended, evaluated by the
+    """The rule of monitor.source.sampling with PostgreSQL's hashint8extended, evaluated by the
     server for every row in one plain query and selected here."""
     # reference: PostgreSQL's documented hashint8extended(bigint, seed), the cap smallest per segment
     with target.admin.connect() as conn:
@@ -483,8 +483,8 @@ def test_short_sample_read_again_and_both_reads_agree(target, tmp_path, monkeypa
     """The first read fetches far too few rows; the boosted second read repairs it. On
     PostgreSQL the values come by binary COPY, on DuckDB as numbered numpy columns, and
     otherwise row by row (or as DuckDB's own columns); every read gives the same sample."""
-    from monitor import sampling as sampling_mod
-    from monitor import source as source_mod
+    from monitor.source import reader as source_mod
+    from monitor.source import sampling as sampling_mod
 
     real = sampling_mod.fetch_fraction
     monkeypatch.setattr(sampling_mod, "fetch_fraction",
@@ -598,13 +598,13 @@ def test_nist_strd_through_the_pushdown(nist_target, tmp_path):
 def test_duckdb_source_is_read_only_quiet_and_memory_capped(tmp_path):
     duckdb = pytest.importorskip("duckdb", reason="duckdb is not installed")
     pytest.importorskip("duckdb_engine", reason="duckdb-engine is not installed")
-    from monitor.db import make_engine
+    from monitor.engines import create_engine
 
     path = tmp_path / "ops.duckdb"
     con = duckdb.connect(str(path))
     con.execute("CREATE TABLE t (x DOUBLE)")
     con.close()
-    engine = make_engine(f"duckdb:///{path}", read_only=True)
+    engine = create_engine(f"duckdb:///{path}", "source", read_only=True)
     with engine.connect() as conn:
         got = dict(conn.exec_driver_sql(
             "SELECT name, value FROM duckdb_settings() WHERE name IN ('memory_limit', 'enable_progress_bar')"
@@ -621,12 +621,12 @@ def test_duckdb_source_is_read_only_quiet_and_memory_capped(tmp_path):
     ref.close()
     assert got == {"memory_limit": expected, "enable_progress_bar": "false"}
     for threads, shown in ((1, "61.0 MiB"), (4, "122.0 MiB")):  # 64 MB and 128 MB in DuckDB's units
-        engine = make_engine(f"duckdb:///{path}?threads={threads}", read_only=True)
+        engine = create_engine(f"duckdb:///{path}?threads={threads}", "source", read_only=True)
         with engine.connect() as conn:
             limit = conn.exec_driver_sql("SELECT current_setting('memory_limit')").scalar()
         engine.dispose()
         assert limit == shown
-    engine = make_engine(f"duckdb:///{path}?memory_limit=1GB", read_only=True)
+    engine = create_engine(f"duckdb:///{path}?memory_limit=1GB", "source", read_only=True)
     with engine.connect() as conn:
         limit = conn.exec_driver_sql("SELECT current_setting('memory_limit')").scalar()
     engine.dispose()
@@ -636,15 +636,15 @@ def test_duckdb_source_is_read_only_quiet_and_memory_capped(tmp_path):
 def test_duckdb_limit_grows_with_the_columns_read_and_its_failure_names_the_fix(tmp_path):
     duckdb = pytest.importorskip("duckdb", reason="duckdb is not installed")
     pytest.importorskip("duckdb_engine", reason="duckdb-engine is not installed")
-    from monitor import db
-    from monitor.pushdown import EngineTraits
-    from monitor.source import _failure_hint
+    from monitor.engines import EngineTraits, create_engine
+    from monitor.engines.duckdb import fit_duckdb_memory
+    from monitor.source.reader import _failure_hint
 
     path = tmp_path / "wide.duckdb"
     duckdb.connect(str(path)).close()
-    engine = db.make_engine(f"duckdb:///{path}?threads=2", read_only=True)
+    engine = create_engine(f"duckdb:///{path}?threads=2", "source", read_only=True)
     with engine.connect() as conn:
-        db.fit_duckdb_memory(conn, 100)  # 100 columns: 1.5 MB each per thread, 2 threads
+        fit_duckdb_memory(conn, 100)  # 100 columns: 1.5 MB each per thread, 2 threads
         limit = conn.exec_driver_sql("SELECT current_setting('memory_limit')").scalar()
         traits = EngineTraits.of(conn.dialect)
     engine.dispose()
@@ -702,7 +702,7 @@ def test_duckdb_values_pass_through_a_temporary_table_and_leave_the_file_alone(t
 def test_row_positions_merge_numbers_that_share_a_label():
     """Several raw segment values can map to one label (the numbered reads); each label's
     rows come out once, ascending, as a plain search of the label per row gives them."""
-    from monitor.source import SegmentCodes, _positions
+    from monitor.source.reader import SegmentCodes, _positions
 
     rng = np.random.default_rng(3)
     names = np.array(["north", "south", "north", "east"], dtype=object)
@@ -746,7 +746,7 @@ def test_postgresql_runs_the_period_without_jit(tmp_path):
 def test_postgresql_before_11_samples_by_md5_through_copy(tmp_path, monkeypatch):
     """Servers without the seeded 64-bit hash (PostgreSQL 10) sample by md5; the COPY read
     then carries 32-character hashes. Forced here on the test server."""
-    from monitor import pushdown as pushdown_mod
+    from monitor.source import pushdown as pushdown_mod
 
     monkeypatch.setattr(pushdown_mod, "hash_kind", lambda traits: "md5")
     t = make_target("postgresql", tmp_path)

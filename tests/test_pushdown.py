@@ -1,4 +1,4 @@
-"""The aggregate SQL builder (monitor.pushdown) and the sampling rule (monitor.sampling).
+"""The aggregate SQL builder (monitor.source.pushdown) and the sampling rule (monitor.source.sampling).
 
 Checked here without a server: the SQL shape on several dialects (CASE, never
 FILTER; columns quoted from column objects; shifted sums, never a raw sum of
@@ -18,9 +18,9 @@ import sqlalchemy as sa
 from scipy import stats
 from sqlalchemy.dialects import mysql, postgresql, sqlite
 
-from monitor import pushdown, sampling
+from monitor.source import pushdown, sampling
 from monitor.config import MetricConfig
-from monitor.pushdown import EngineTraits, Shift
+from monitor.source.pushdown import EngineTraits, Shift
 
 METRICS = (
     MetricConfig(column="dwell hours", name="dwell"),  # a name that needs quoting

@@ -257,7 +257,7 @@ def test_look_back_recompute_that_changes_nothing_sends_nothing(tmp_path):
 
 
 def test_source_outage_fails_the_period_then_a_sweep_retries_it_after_backoff(tmp_path, monkeypatch):
-    monkeypatch.setattr("monitor.source.RETRY_BASE_SECONDS", 0.0)
+    monkeypatch.setattr("monitor.source.reader.RETRY_BASE_SECONDS", 0.0)
     root = _project(tmp_path).parent
     (root / "src").rename(root / "src-away")
     cfg = load_config(root / "job.yaml")

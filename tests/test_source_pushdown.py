@@ -26,7 +26,9 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from monitor import db, sampling
+from monitor.engines import check_server_version
+from monitor.engines import sqlite as sqlite_engine
+from monitor.source import sampling
 from monitor.analysis import analyse_period
 from monitor.config import parse_config
 from monitor.errors import SourceError
@@ -189,27 +191,27 @@ def test_text_column_falls_back_to_local_with_a_reason(tmp_path, caplog):
 
 def test_old_servers_are_refused_with_a_clear_message():
     with pytest.raises(SourceError) as err:
-        db.check_server_version("sqlite", (3, 24, 0), "source sqlite:///x.sqlite")
+        check_server_version("sqlite", (3, 24, 0), "source sqlite:///x.sqlite")
     assert str(err.value) == (
         "source sqlite:///x.sqlite: SQLite 3.24.0 is too old; segwatch needs SQLite 3.25 or newer "
         "(window functions); upgrade the server (for SQLite: the library Python's sqlite3 module is built with)"
     )
     with pytest.raises(SourceError, match=r"^src: MariaDB 10\.1\.48 is too old; segwatch needs MariaDB 10\.2 or newer"):
-        db.check_server_version("mariadb", (10, 1, 48), "src")
+        check_server_version("mariadb", (10, 1, 48), "src")
     with pytest.raises(SourceError, match=r"^src: MySQL 5\.7\.44 is too old; segwatch needs MySQL 8\.0 or newer"):
-        db.check_server_version("mysql", (5, 7, 44), "src")
+        check_server_version("mysql", (5, 7, 44), "src")
     with pytest.raises(SourceError, match=r"^src: PostgreSQL 9\.6\.24 is too old; segwatch needs PostgreSQL 10 or newer"):
-        db.check_server_version("postgresql", (9, 6, 24), "src")
+        check_server_version("postgresql", (9, 6, 24), "src")
     for engine, version in (("sqlite", (3, 25, 0)), ("mariadb", (10, 2, 0)), ("mysql", (8, 0, 1)),
                             ("postgresql", (10, 0)), ("duckdb", (0, 1)), ("postgresql", None)):
-        db.check_server_version(engine, version, "src")  # accepted
+        check_server_version(engine, version, "src")  # accepted
 
 
 def test_sqlite_without_math_functions_gets_a_python_ln():
     con = sqlite3.connect(":memory:")
-    assert db.install_sqlite_functions(con, has_ln=False) is True
+    assert sqlite_engine.install_sqlite_functions(con, has_ln=False) is True
     # reference: math.log, and Python's hashlib for the md5 function
     assert con.execute("SELECT ln(2.0)").fetchone()[0] == math.log(2.0)
     assert con.execute("SELECT ln(-1.0)").fetchone()[0] is None
     assert con.execute("SELECT segwatch_md5('7:0')").fetchone()[0] == hashlib.md5(b"7:0").hexdigest()
-    assert db.install_sqlite_functions(sqlite3.connect(":memory:")) is (not db.sqlite_has_ln(sqlite3.connect(":memory:")))
+    assert sqlite_engine.install_sqlite_functions(sqlite3.connect(":memory:")) is (not sqlite_engine.sqlite_has_ln(sqlite3.connect(":memory:")))

@@ -58,7 +58,7 @@ from .. import __version__
 from . import plots
 from ..model import QUANTILE_KEYS
 from ..config import JobConfig, MetricConfig
-from ..db import redact
+from ..engines import redact
 from ..errors import SegwatchError, UsageError
 from ..events import CHECK_NAMES
 from ..periods import Period, parse_period

@@ -46,7 +46,8 @@ import sqlalchemy as sa
 from sqlalchemy.engine import Engine
 from sqlalchemy.exc import SQLAlchemyError
 
-from ..db import one_line, redact
+from ..engines import create_engine, one_line, redact
+from ..engines import get as engine_for
 from ..errors import HistoryError, LeaseLost
 from ..model import Event, MetricResult
 from ..periods import Period
@@ -235,28 +236,13 @@ def iso_utc(dt: datetime | None) -> str | None:
 def insert_missing(conn: sa.Connection, table: sa.Table, row: Mapping[str, Any]) -> bool:
     """Insert ``row`` unless a row with the same primary key exists; True when inserted.
 
-    One helper per dialect (SQLAlchemy has no portable upsert, issue #8321):
+    One form per engine (SQLAlchemy has no portable upsert, issue #8321), written by the
+    engine module (:meth:`monitor.engines.base.Engine.insert_missing`):
     ``INSERT .. ON CONFLICT DO NOTHING`` on SQLite and PostgreSQL, ``INSERT IGNORE`` on
     MySQL/MariaDB, and check-then-insert elsewhere (safe inside the caller's
     serialising transaction).
     """
-    name = conn.dialect.name
-    if name == "sqlite":
-        from sqlalchemy.dialects.sqlite import insert as dialect_insert
-        stmt = dialect_insert(table).values(**row).on_conflict_do_nothing()
-    elif name == "postgresql":  # rowcount of an INSERT is not reported there (-1): ask for the row back
-        from sqlalchemy.dialects.postgresql import insert as dialect_insert
-        pk = list(table.primary_key.columns)[0]
-        stmt = dialect_insert(table).values(**row).on_conflict_do_nothing().returning(pk)
-        return conn.execute(stmt).first() is not None
-    elif name in ("mysql", "mariadb"):
-        stmt = sa.insert(table).values(**row).prefix_with("IGNORE")
-    else:
-        where = [c == row[c.name] for c in table.primary_key.columns]
-        if conn.execute(sa.select(sa.literal(1)).select_from(table).where(*where)).first() is not None:
-            return False
-        stmt = sa.insert(table).values(**row)
-    return conn.execute(stmt).rowcount == 1
+    return engine_for(conn.dialect.name).insert_missing(conn, table, row)
 
 
 def is_op(kind: str) -> bool:
@@ -315,7 +301,7 @@ class History:
     def __init__(self, url: str, job: str, engine: Engine | None = None):
         self.url = url
         self.job = job
-        self.engine = engine or _make_engine(url)
+        self.engine = engine or create_engine(url, "history")
         self._ready = False
 
     # -------------------------------------------------------------- set-up
@@ -687,39 +673,3 @@ def _insert_rows(conn: sa.Connection, table: sa.Table, columns: Sequence[str],
         bind_keys = [escaped.get(name, name) for name in names]
         params = [dict(zip(bind_keys, row)) for row in rows]
     conn.exec_driver_sql(compiled.string, params)
-
-
-def _make_engine(url: str) -> Engine:
-    try:
-        u = sa.engine.make_url(url)
-    except Exception as exc:  # noqa: BLE001
-        raise HistoryError(f"history.url: cannot parse {url!r}: {exc}") from exc
-    if u.get_backend_name() == "sqlite":
-        db = u.database
-        if db and db != ":memory:":
-            try:
-                Path(db).parent.mkdir(parents=True, exist_ok=True)
-            except OSError as exc:
-                raise HistoryError(f"cannot create the folder for the history file {db}: {exc.strerror}") from exc
-        engine = sa.create_engine(url, connect_args={"timeout": 30})
-
-        @sa.event.listens_for(engine, "connect")
-        def _on_connect(dbapi_conn, _record):  # pragma: no cover - exercised by every test
-            dbapi_conn.isolation_level = None  # let us issue BEGIN ourselves
-            cur = dbapi_conn.cursor()
-            cur.execute("PRAGMA busy_timeout=30000")  # before anything that may wait for a lock
-            if db and db != ":memory:" and cur.execute("PRAGMA journal_mode").fetchone()[0].lower() != "wal":
-                cur.execute("PRAGMA journal_mode=WAL")  # once per file; WAL persists in the file
-            cur.close()
-
-        @sa.event.listens_for(engine, "begin")
-        def _on_begin(conn):  # pragma: no cover
-            conn.exec_driver_sql("BEGIN IMMEDIATE")
-
-        return engine
-    try:
-        return sa.create_engine(url, pool_pre_ping=True, pool_recycle=1800)
-    except (SQLAlchemyError, ImportError) as exc:
-        raise HistoryError(f"history.url: cannot open {redact(url)}: {one_line(exc)}") from exc
-
-

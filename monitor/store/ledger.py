@@ -48,7 +48,7 @@ import sqlalchemy as sa
 from sqlalchemy.exc import SQLAlchemyError
 
 from ..clock import Clock
-from ..db import one_line, redact
+from ..engines import one_line, redact
 from ..errors import HistoryError, LeaseLost, PeriodBusy
 from ..model import Event
 from .history import History, _utc_naive, insert_missing, insert_op, iso_utc, leases_t, ledger_t, utc_aware

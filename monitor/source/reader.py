@@ -49,30 +49,21 @@ import sqlalchemy as sa
 from sqlalchemy.engine import Engine
 from sqlalchemy.exc import NoSuchTableError, SQLAlchemyError
 
+from .. import engines
+from ..config import JobConfig, MetricConfig, SourceConfig
+from ..engines import EngineTraits, check_server_version, format_version, hash_array, one_line, redact
+from ..errors import ConfigError, SourceError
+from ..model import MetricInput, QualityCounts, SegmentInput
+from ..periods import Period
+from ..stats.summary import Moments
 from . import pushdown
-from .model import MetricInput, QualityCounts, SegmentInput
-from .config import JobConfig, MetricConfig, SourceConfig
-from .db import (
-    check_server_version,
-    duckdb_table_names,
-    fit_duckdb_memory,
-    format_version,
-    make_engine,
-    one_line,
-    redact,
-    reflect_duckdb_table,
-    server_version,
-)
-from .errors import ConfigError, SourceError
-from .periods import Period
-from .pushdown import Aggregate, EngineTraits, MetricPlan, Shift
+from .pushdown import Aggregate, MetricPlan, Shift
 from .sampling import SamplePlan, plan_sample, smallest, thresholds
-from .stats.summary import Moments
 
 if TYPE_CHECKING:
     import pandas as pd
 
-__all__ = ["PeriodData", "Source", "SourceInfo", "make_engine", "summarise_frame"]
+__all__ = ["PeriodData", "Source", "SourceInfo", "summarise_frame"]
 
 log = logging.getLogger(__name__)
 
@@ -82,10 +73,6 @@ RETRY_BASE_SECONDS = 0.5
 SAMPLE_RETRIES = 4
 #: Rows per chunk when reading the values query.
 FETCH_CHUNK = 20_000
-#: Engines whose queries of one period are run in one REPEATABLE READ transaction.
-_SNAPSHOT_ENGINES = ("postgresql", "mysql")
-#: Engines that run inside segwatch's own process.
-_IN_PROCESS_ENGINES = ("sqlite", "duckdb")
 
 
 @dataclass(frozen=True)
@@ -115,7 +102,9 @@ class Source:
     def __init__(self, job: JobConfig, engine: Engine | None = None):
         self.job = job
         self.cfg: SourceConfig = job.source
-        self.engine = engine or make_engine(self.cfg.url, read_only=True)
+        self.engine = engine or engines.create_engine(self.cfg.url, "source", read_only=True)
+        #: What differs on this database engine (monitor.engines).
+        self.backend = engines.for_dialect(self.engine.dialect)
         self._from: sa.FromClause | None = None
         self._version: tuple[str, tuple[int, ...] | None] | None = None
         self._fallback_logged = False
@@ -128,7 +117,7 @@ class Source:
     def remote(self) -> bool:
         """Whether the source is a database server (the work happens in another
         process), not an engine inside this one (SQLite, DuckDB)."""
-        return self.engine.dialect.name not in _IN_PROCESS_ENGINES
+        return not self.backend.in_process
 
     def _relation(self) -> sa.FromClause:
         if self._from is None:
@@ -140,18 +129,14 @@ class Source:
         where = f"{self.job.path}: source"
         try:
             with self._connect() as conn:
-                self._version = server_version(conn)
+                self._version = self.backend.server_version(conn)
                 check_server_version(*self._version, where=f"source {redact(cfg.url)}")
                 if cfg.table is not None:
                     schema, _, name = cfg.table.rpartition(".")
                     try:
-                        rel: sa.FromClause = self._reflect_table(conn, name, schema or None)
+                        rel: sa.FromClause = self.backend.reflect_table(conn, name, schema or None)
                     except NoSuchTableError:
-                        tables = (
-                            duckdb_table_names(conn, schema or None)
-                            if conn.dialect.name == "duckdb"
-                            else sa.inspect(conn).get_table_names(schema=schema or None)
-                        )
+                        tables = self.backend.table_names(conn, schema or None)
                         raise ConfigError(
                             f"{where}.table: no table {cfg.table!r} in {redact(cfg.url)} "
                             f"(tables there: {', '.join(sorted(tables)) or 'none'})"
@@ -180,15 +165,6 @@ class Source:
                 )
         return rel
 
-    @staticmethod
-    def _reflect_table(conn: sa.Connection, name: str, schema: str | None) -> sa.Table:
-        if conn.dialect.name == "duckdb":
-            table = reflect_duckdb_table(conn, name, schema)
-            if table is None:
-                raise NoSuchTableError(name)
-            return table
-        return sa.Table(name, sa.MetaData(), schema=schema, autoload_with=conn)
-
     def describe(self) -> SourceInfo:
         """Reach the source, check the server version and the columns, and report them."""
         rel = self._relation()
@@ -201,21 +177,7 @@ class Source:
         """The WHERE condition placing a record in ``period`` (see module notes)."""
         rel = self._relation()
         col = rel.c[self.cfg.time_column]
-        ctype = col.type
-        if self.engine.dialect.name == "sqlite":
-            lo, hi = self._naive_bounds(period)
-            norm = sa.func.datetime(col)
-            fmt = "%Y-%m-%d %H:%M:%S"
-            return sa.and_(norm >= lo.strftime(fmt), norm < hi.strftime(fmt))
-        if isinstance(ctype, sa.Date) and not isinstance(ctype, sa.DateTime):
-            return sa.and_(col >= period.start.date(), col < period.end.date())
-        if isinstance(ctype, sa.DateTime) and ctype.timezone:
-            return sa.and_(
-                col >= period.start.astimezone(timezone.utc),
-                col < period.end.astimezone(timezone.utc),
-            )
-        lo, hi = self._naive_bounds(period)
-        return sa.and_(col >= lo, col < hi)
+        return self.backend.time_window(col, period, self._naive_bounds(period))
 
     def _naive_bounds(self, period: Period) -> tuple[datetime, datetime]:
         if self.cfg.naive_time == "utc":
@@ -270,8 +232,8 @@ class Source:
         step = "the shift probe"
         try:
             with self._connect() as conn:
-                if traits.name in _SNAPSHOT_ENGINES:
-                    conn = conn.execution_options(isolation_level="REPEATABLE READ")
+                if self.backend.snapshot_isolation:
+                    conn = conn.execution_options(isolation_level=self.backend.snapshot_isolation)
                 with conn.begin():
                     _tune_session(conn, traits, len(plans) + 3)
                     shifts = self._shifts(conn, rel, plans, where, traits)
@@ -425,31 +387,16 @@ class Source:
 
 
 def _failure_hint(traits: EngineTraits, exc: BaseException) -> str:
-    """What to do about a failed push-down query, in a few words."""
-    if traits.name == "duckdb" and "out of memory" in str(exc).lower():
-        return ("DuckDB ran out of the memory segwatch allows it; set a larger limit in the URL, "
-                "e.g. duckdb:///file.duckdb?memory_limit=1GB")
-    return "compute: local reads the rows instead"
+    """What to do about a failed push-down query, in a few words (the engine's own
+    hint, e.g. DuckDB's memory limit, else reading the rows)."""
+    return traits.engine.failure_hint(exc) or "compute: local reads the rows instead"
 
 
 def _tune_session(conn: sa.Connection, traits: EngineTraits, columns: int = 0) -> None:
-    """Per-transaction settings for segwatch's wide aggregate queries.
-
-    DuckDB: segwatch's own memory limit is raised to fit ``columns`` columns
-    (:func:`monitor.db.fit_duckdb_memory`).
-
-    PostgreSQL 11+ compiles a query whose estimated cost passes ``jit_above_cost``
-    with LLVM; for a query with hundreds of aggregate expressions that compilation
-    alone took longer than the scan it was meant to speed up (about 4 s of 6 s at
-    2,000,000 rows x 20 metrics here), so JIT is switched off for segwatch's own
-    transaction (``SET LOCAL``; the server's setting is untouched).
-    """
-    if traits.name == "postgresql":
-        version = getattr(conn.dialect, "server_version_info", None) or (0,)
-        if version >= (11,):
-            conn.exec_driver_sql("SET LOCAL jit = off")
-    elif traits.name == "duckdb":
-        fit_duckdb_memory(conn, columns)
+    """Per-transaction settings for segwatch's wide aggregate queries
+    (:meth:`monitor.engines.base.Engine.tune_transaction`: PostgreSQL 11+ without JIT,
+    DuckDB's memory limit fitted to ``columns`` columns)."""
+    traits.engine.tune_transaction(conn, columns)
 
 
 def _fetch_columns(conn: sa.Connection, stmt: sa.Select, traits: EngineTraits, width: int, *,
@@ -460,30 +407,28 @@ def _fetch_columns(conn: sa.Connection, stmt: sa.Select, traits: EngineTraits, w
     (NaN where the value is not usable).
 
     Rows are streamed in chunks of :data:`FETCH_CHUNK` and turned into arrays chunk by
-    chunk, so memory holds arrays, not millions of Python objects. DuckDB's row-by-row
-    fetch is slow, so its result is taken as numpy arrays directly; PostgreSQL's goes
-    through binary ``COPY`` (:func:`_copy_columns`) when ``raw`` (label -> raw segment
-    values) names the segments.
+    chunk, so memory holds arrays, not millions of Python objects. Where the engine
+    has a fast read of plain numbers (PostgreSQL's binary ``COPY``, DuckDB's numpy
+    columns: :meth:`monitor.engines.base.Engine.read_numbered`) and ``raw`` (label ->
+    raw segment values) names the segments, the query is reshaped for it
+    (:func:`_numbered`); an engine may also hand back whole columns
+    (:meth:`~monitor.engines.base.Engine.fetch_values`, DuckDB).
     """
-    if traits.name == "postgresql" and raw is not None and _copy_possible(conn, raw):
-        return _copy_columns(conn, stmt, width, hashed=hashed, raw=raw)
-    if traits.name == "duckdb" and raw is not None and _numbered_possible(raw) \
-            and hasattr(conn.connection.driver_connection, "execute"):
-        return _duckdb_columns(conn, stmt, width, hashed=hashed, raw=raw)
-    if traits.name == "duckdb":
-        result = conn.execute(stmt)
-        if hasattr(result.cursor, "fetchnumpy"):
-            data = result.cursor.fetchnumpy()
-            columns = [data[k] for k in result.keys()]
-            names, codes = np.unique(np.array([str(v) for v in np.asarray(columns[0], dtype=object)],
-                                              dtype=object), return_inverse=True)
-            labels = SegmentCodes(codes.ravel(), names)
-            hashes = _hash_array(columns[1]) if hashed else _hash_array(())
-            return labels, hashes, [_floats(c) for c in columns[1 + hashed:]]
-        chunks = [result.all()]
-    else:
-        result = conn.execute(stmt.execution_options(yield_per=FETCH_CHUNK))
-        chunks = result.partitions()
+    backend = traits.engine
+    if raw is not None and _numbered_possible(raw) and backend.numbered_read_possible(conn):
+        numbered, names = _numbered(stmt, width, hashed=hashed, raw=raw)
+        g, hashes, values = backend.read_numbered(conn, numbered, width, hashed=hashed)
+        if g.size and (g < 0).any():
+            raise SourceError("the values query returned a segment the aggregate query did not")
+        return SegmentCodes(g, np.array(names, dtype=object)), hashes, values
+    columns, chunks = backend.fetch_values(conn, stmt, FETCH_CHUNK)
+    if columns is not None:
+        names, codes = np.unique(np.array([str(v) for v in np.asarray(columns[0], dtype=object)],
+                                          dtype=object), return_inverse=True)
+        labels = SegmentCodes(codes.ravel(), names)
+        hashes = hash_array(columns[1]) if hashed else hash_array(())
+        return labels, hashes, [_floats(c) for c in columns[1 + hashed:]]
+    assert chunks is not None
     codes: dict[str, int] = {}
     parts: list[list[np.ndarray]] = []
     for rows in chunks:
@@ -494,7 +439,7 @@ def _fetch_columns(conn: sa.Connection, stmt: sa.Select, traits: EngineTraits, w
         part = [np.fromiter((codes.setdefault(str(v), len(codes)) for v in cols[0]), dtype=np.int32,
                             count=len(cols[0]))]
         if hashed:
-            part.append(_hash_array(cols[1]))
+            part.append(hash_array(cols[1]))
         part += [np.array(c, dtype=float) for c in cols[1 + hashed:]]
         parts.append(part)
         del cols
@@ -517,105 +462,10 @@ def _fetch_columns(conn: sa.Connection, stmt: sa.Select, traits: EngineTraits, w
 #: PostgreSQL, numpy on DuckDB): each returned row maps its segment to a number with
 #: one CASE branch per segment.
 COPY_MAX_SEGMENTS = 200
-#: Bytes of the COPY stream gathered before numpy parses them.
-COPY_BLOCK_BYTES = 4 << 20
-_COPY_FIX = " (a proxy or driver that alters COPY data?); compute: local reads the rows instead"
-_COPY_SIGNATURE = b"PGCOPY\n\xff\r\n\x00"
 
 
 def _numbered_possible(raw: Mapping[str, Sequence[Any]]) -> bool:
     return 0 < sum(len(v) for v in raw.values()) <= COPY_MAX_SEGMENTS
-
-
-def _copy_possible(conn: sa.Connection, raw: Mapping[str, Sequence[Any]]) -> bool:
-    driver = getattr(conn.connection, "driver_connection", None)
-    return _numbered_possible(raw) and hasattr(getattr(driver, "cursor", None), "__call__") \
-        and type(driver).__module__.startswith("psycopg")
-
-
-def _copy_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed: bool,
-                  raw: Mapping[str, Sequence[Any]]) -> tuple[SegmentCodes, np.ndarray, list[np.ndarray]]:
-    """The values query through PostgreSQL's binary ``COPY ... TO STDOUT``, parsed by numpy.
-
-    The rows are reshaped so that every field has a fixed width (:func:`_numbered`):
-    the segment becomes its number in ``raw`` (``CASE``), the hash is a 64-bit integer
-    (or 32 hex characters, before PostgreSQL 11), and a value that is not usable
-    becomes NaN instead of NULL. Each row then has the same layout
-    (PostgreSQL's documented binary copy format: a 16-bit field count, then per field
-    a 32-bit length and the big-endian value), so chunks of the stream are read with
-    one structured numpy dtype instead of creating a Python object per value. Runs on
-    the transaction's own connection, inside its snapshot.
-    """
-    numbered, names = _numbered(stmt, width, hashed=hashed, raw=raw)
-    sub = numbered.selected_columns
-    compiled = numbered.compile(dialect=conn.dialect, compile_kwargs={"render_postcompile": True})
-    text_hash = hashed and not isinstance(sub.h.type, sa.BigInteger)
-    fields = [("nf", ">i2"), ("l_g", ">i4"), ("g", ">i4")]
-    if hashed:
-        fields += [("l_h", ">i4"), ("h", "S32" if text_hash else ">i8")]
-    for j in range(width):
-        fields += [(f"l{j}", ">i4"), (f"v{j}", ">f8")]
-    dtype = np.dtype(fields)
-    expect = {"nf": len(sub), "l_g": 4, "l_h": 32 if text_hash else 8, **{f"l{j}": 8 for j in range(width)}}
-    names_out = ["g", *(["h"] if hashed else []), *[f"v{j}" for j in range(width)]]
-    native = {"g": np.int32, "h": "S32" if text_hash else np.int64, **{f"v{j}": np.float64 for j in range(width)}}
-    parts: dict[str, list[np.ndarray]] = {name: [] for name in names_out}
-    buf = bytearray()
-    pending: list[bytes] = []  # libpq hands out one row per chunk: parse in blocks
-    size = 0
-    start = True
-
-    def parse() -> None:
-        # each block becomes native column arrays at once, so only one block's raw bytes live
-        nonlocal start, size
-        buf.extend(b"".join(pending))
-        pending.clear()
-        size = 0
-        if start:
-            if len(buf) < 19:
-                return
-            if bytes(buf[:11]) != _COPY_SIGNATURE:
-                raise SourceError(f"PostgreSQL COPY returned an unexpected header{_COPY_FIX}")
-            ext = int.from_bytes(buf[15:19], "big")
-            del buf[:19 + ext]
-            start = False
-        whole = len(buf) // dtype.itemsize * dtype.itemsize
-        if not whole:
-            return
-        block = np.frombuffer(memoryview(buf)[:whole], dtype=dtype)
-        for name, size_ in expect.items():
-            if name in dtype.names and not np.all(block[name] == size_):
-                raise SourceError(f"PostgreSQL COPY returned rows of an unexpected layout{_COPY_FIX}")
-        for name in names_out:
-            parts[name].append(block[name].astype(native[name]))
-        del block
-        del buf[:whole]
-
-    cursor = conn.connection.driver_connection.cursor()
-    try:
-        with cursor.copy(f"COPY ({compiled}) TO STDOUT (FORMAT BINARY)", compiled.params) as copy:
-            for chunk in copy:
-                pending.append(bytes(chunk))
-                size += len(chunk)
-                if size >= COPY_BLOCK_BYTES:
-                    parse()
-        parse()
-    finally:
-        cursor.close()
-    if bytes(buf) not in (b"\xff\xff", b""):
-        raise SourceError(f"PostgreSQL COPY returned rows of an unexpected layout{_COPY_FIX}")
-    columns = {}
-    for name in names_out:
-        pieces = parts.pop(name)
-        columns[name] = np.concatenate(pieces) if pieces else np.empty(0, dtype=native[name])
-        del pieces
-    g = columns["g"]
-    if g.size and (g < 0).any():
-        raise SourceError("the values query returned a segment the aggregate query did not")
-    labels = SegmentCodes(g, np.array(names, dtype=object))
-    hashes = columns["h"] if hashed else np.empty(0, dtype="S32")
-    values = [columns[f"v{j}"] for j in range(width)]
-    return labels, hashes, values
 
 
 def _numbered(stmt: sa.Select, width: int, *, hashed: bool, raw: Mapping[str, Sequence[Any]]
@@ -637,47 +487,6 @@ def _numbered(stmt: sa.Select, width: int, *, hashed: bool, raw: Mapping[str, Se
     if len(cols) - 1 - hashed != width:
         raise AssertionError("values query columns do not match the metrics")
     return sa.select(*cols), names
-
-
-#: The temporary table that holds the values on DuckDB while they are read column by column.
-DUCKDB_VALUES_TABLE = "segwatch_values"
-
-
-def _duckdb_columns(conn: sa.Connection, stmt: sa.Select, width: int, *, hashed: bool,
-                    raw: Mapping[str, Sequence[Any]]) -> tuple[SegmentCodes, np.ndarray, list[np.ndarray]]:
-    """The values query on DuckDB as plain numpy arrays (:func:`_numbered`: no masked
-    arrays, no segment strings; about 60 MB less at 300,000 rows x 20 metrics).
-
-    The rows go first into a temporary table, inside DuckDB's buffer pool and under
-    segwatch's memory limit, and are then read one column at a time. Read all at once,
-    DuckDB converts a result of unknown length through arrays that double as they
-    fill: just past 262,144 rows (50 segments of 5,291 sampled rows) that held about
-    50 MB more than the values themselves (measured: 356 against 314 MB at the peak of
-    a run, 2,000,000 rows x 20 metrics), for about 0.1 to 0.2 s more work.
-    """
-    numbered, names = _numbered(stmt, width, hashed=hashed, raw=raw)
-    keys = [c.key for c in numbered.selected_columns]
-    conn.execute(pushdown.CreateTempTableAs(DUCKDB_VALUES_TABLE, numbered))
-    table = conn.dialect.identifier_preparer.quote(DUCKDB_VALUES_TABLE)
-    data = {}
-    for key in keys:
-        column = conn.dialect.identifier_preparer.quote(key)
-        data[key] = conn.exec_driver_sql(f"SELECT {column} FROM {table}").cursor.fetchnumpy()[key]
-    conn.exec_driver_sql(f"DROP TABLE {table}")
-    g = np.asarray(data.pop(keys[0]), dtype=np.int64)
-    if g.size and (g < 0).any():
-        raise SourceError("the values query returned a segment the aggregate query did not")
-    labels = SegmentCodes(g, np.array(names, dtype=object))
-    hashes = _hash_array(data.pop(keys[1])) if hashed else _hash_array(())
-    values = [np.asarray(data.pop(k), dtype=float) for k in keys[1 + hashed:]]
-    return labels, hashes, values
-
-
-def _hash_array(values: Any) -> np.ndarray:
-    """Sampling hashes as an array that sorts like them: 64-bit integers, or the hex digests
-    as 32-byte strings (an empty input gives an empty string array)."""
-    a = np.asarray(values)
-    return a.astype(np.int64) if a.size and a.dtype.kind in "iu" else a.astype("S32")
 
 
 def _value_positions(sub: sa.Subquery) -> list[int]:

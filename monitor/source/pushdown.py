@@ -58,7 +58,7 @@ What is counted where
   is left out there.
 * Out of domain: values ``<= 0`` under ``log``, ``<= -1`` under ``log1p``. The
   transform is ``ln(x)`` / ``ln(1 + x)`` in SQL (every supported engine has ``ln``;
-  SQLite builds without math functions get a Python ``ln`` from :mod:`monitor.db`).
+  SQLite builds without math functions get a Python ``ln`` from :mod:`monitor.engines.sqlite`).
 
 Column names never enter SQL text: every column is a reflected column object of the
 source relation, quoted by SQLAlchemy per dialect. Conditional aggregates are written
@@ -88,114 +88,17 @@ from fractions import Fraction
 from typing import Any, Iterable, Mapping, Sequence
 
 import sqlalchemy as sa
-from sqlalchemy.ext.compiler import compiles
-from sqlalchemy.sql.base import Executable
-from sqlalchemy.sql.elements import ClauseElement
-from sqlalchemy.sql.functions import FunctionElement
 
-from .model import QualityCounts
-from .config import MetricConfig
-from .db import SQLITE_MD5
-from .stats.summary import Moments
-from .stats.warnings import InaccurateResultWarning
+from ..config import MetricConfig
+from ..engines import EngineTraits, to_double  # EngineTraits: also read from here
+from ..model import QualityCounts
+from ..stats.summary import Moments
+from ..stats.warnings import InaccurateResultWarning
 
 log = logging.getLogger(__name__)
 
 #: Rows the shift probe reads at most (it stops there: ``LIMIT``).
 PROBE_ROWS = 1000
-
-#: MySQL/MariaDB decimals are summed exactly up to these digits after / before the point.
-MYSQL_EXACT_SCALE = 15
-MYSQL_EXACT_INTEGER_DIGITS = 17
-
-
-# ------------------------------------------------------------------ engine traits
-
-
-@dataclass(frozen=True)
-class EngineTraits:
-    """What the SQL has to allow for on one engine.
-
-    Attributes
-    ----------
-    name : str
-        SQLAlchemy dialect name (``sqlite``, ``postgresql``, ``mysql``, ``duckdb``, ...).
-    typeof : bool
-        Values may be text in a numeric column (SQLite): test ``typeof``.
-    non_finite : bool
-        The engine can store inf/NaN (all but MySQL/MariaDB).
-    exact : bool
-        ``NUMERIC``/``DECIMAL`` sums can be kept exact (PostgreSQL, MySQL/MariaDB).
-    version : tuple of int
-        The server's version once a connection has been made (empty before).
-    """
-
-    name: str
-    typeof: bool
-    non_finite: bool
-    exact: bool
-    version: tuple[int, ...] = ()
-
-    @classmethod
-    def of(cls, dialect: sa.engine.Dialect) -> EngineTraits:
-        name = dialect.name
-        version = getattr(dialect, "server_version_info", None) or ()
-        return cls(
-            name=name,
-            typeof=name == "sqlite",
-            non_finite=name != "mysql",
-            exact=name in ("postgresql", "mysql"),
-            version=tuple(v for v in version if isinstance(v, int)),
-        )
-
-
-# ------------------------------------------------------------------ to double
-
-
-class to_double(FunctionElement):  # noqa: N801 - reads like the SQL function it stands for
-    """``CAST(x AS DOUBLE)`` per dialect.
-
-    SQLAlchemy skips ``CAST ... AS DOUBLE`` on MySQL/MariaDB, and an arithmetic mix
-    with a decimal literal would stay decimal there, so MySQL gets ``(x + 0E0)``,
-    which MySQL evaluates in double precision.
-    """
-
-    type = sa.Double()
-    name = "to_double"
-    inherit_cache = True
-
-
-@compiles(to_double)
-def _to_double_default(element: to_double, compiler: Any, **kw: Any) -> str:
-    (arg,) = list(element.clauses)
-    return compiler.process(sa.cast(arg, sa.Double()), **kw)
-
-
-@compiles(to_double, "mysql")
-def _to_double_mysql(element: to_double, compiler: Any, **kw: Any) -> str:
-    (arg,) = list(element.clauses)
-    return f"({compiler.process(arg, **kw)} + 0E0)"
-
-
-# ------------------------------------------------------------------ temporary table
-
-
-class CreateTempTableAs(Executable, ClauseElement):
-    """``CREATE OR REPLACE TEMPORARY TABLE name AS <select>`` (DuckDB), with the
-    select's bound parameters passed as usual (the "CREATE TABLE AS" pattern of
-    SQLAlchemy's compiler extension)."""
-
-    inherit_cache = False
-
-    def __init__(self, name: str, select: sa.Select):
-        self.name = name
-        self.select = select
-
-
-@compiles(CreateTempTableAs)
-def _create_temp_table_as(element: CreateTempTableAs, compiler: Any, **kw: Any) -> str:
-    name = compiler.preparer.quote(element.name)
-    return f"CREATE OR REPLACE TEMPORARY TABLE {name} AS {compiler.process(element.select, **kw)}"
 
 
 # ------------------------------------------------------------------ planning
@@ -255,7 +158,7 @@ def plan_metrics(
     plans = []
     for i, m in enumerate(metrics):
         col = rel.c[m.column]
-        ctype = col.type
+        ctype = traits.engine.column_type(col.type)
         if isinstance(ctype, sa.types.NullType):
             kind = "float"
         elif isinstance(ctype, sa.Boolean):
@@ -274,14 +177,7 @@ def plan_metrics(
 
 
 def _exact_ok(ctype: sa.Numeric, traits: EngineTraits) -> bool:
-    if not traits.exact:
-        return False
-    if traits.name != "mysql":
-        return True
-    p, s = ctype.precision, ctype.scale
-    if p is None or s is None:
-        return False
-    return s <= MYSQL_EXACT_SCALE and p - s <= MYSQL_EXACT_INTEGER_DIGITS
+    return traits.exact and traits.engine.exact_decimal(ctype)
 
 
 def _type_name(ctype: Any) -> str:
@@ -456,11 +352,10 @@ def _fence(stmt: sa.Select, traits: EngineTraits) -> sa.Select:
     outer query, so a ``CASE`` used by six aggregates would run six times per row;
     ``OFFSET 0`` (SQLite: ``LIMIT -1 OFFSET 0``) is the customary fence. DuckDB
     eliminates common subexpressions itself, MySQL would materialise a fenced
-    derived table, and other engines are left as they are.
+    derived table, and other engines are left as they are
+    (:meth:`monitor.engines.base.Engine.fence`).
     """
-    if traits.name in ("postgresql", "sqlite"):
-        return stmt.offset(0)
-    return stmt
+    return traits.engine.fence(stmt)
 
 
 def aggregate_query(rel: sa.FromClause, segment_key: str, plans: Sequence[MetricPlan],
@@ -681,54 +576,25 @@ def ill_shifted(agg: Aggregate, plans: Sequence[MetricPlan], shifts: Mapping[int
 
 
 def hash_kind(traits: EngineTraits) -> str:
-    """``int64`` where the engine has a fast seeded 64-bit hash (PostgreSQL 11+), else ``md5``."""
-    if traits.name == "postgresql" and traits.version >= (11,):
-        return "int64"
-    if traits.name == "duckdb":
-        return "md5_60"
-    return "md5"
+    """``int64`` where the engine has a fast seeded 64-bit hash (PostgreSQL 11+), ``md5_60``
+    (DuckDB), else ``md5`` (:meth:`monitor.engines.base.Engine.hash_kind`)."""
+    return traits.engine.hash_kind(traits.version)
 
 
 def hash_expr(key_columns: Sequence[sa.ColumnElement], seed: int, traits: EngineTraits) -> sa.ColumnElement:
-    """The sampling hash of a row's key and the seed (see :mod:`monitor.sampling`).
+    """The sampling hash of a row's key and the seed (see :mod:`monitor.source.sampling`).
 
     ``md5``: lowercase hex MD5 of ``key1|key2|...:seed``. PostgreSQL, MySQL/MariaDB and
     DuckDB have ``md5(text)``; Trino hashes bytes (``lower(to_hex(md5(to_utf8(...))))``);
-    SQLite gets the Python function that :mod:`monitor.db` registers on segwatch's
+    SQLite gets the Python function that :mod:`monitor.engines.sqlite` registers on segwatch's
     connections. ``int64`` (PostgreSQL 11+, :func:`hash_kind`):
     ``hashint8extended(key, seed)`` for one integer key column, else
     ``hashtextextended(key1|key2|..., seed)``. ``md5_60`` (DuckDB): the first 15 hex
     digits of the same MD5 as a ``BIGINT``, which orders rows as the hex digest does.
-    A NULL key part counts as an empty string (as 0 for the integer hash).
+    A NULL key part counts as an empty string (as 0 for the integer hash). Each form is
+    written by its engine module (:meth:`monitor.engines.base.Engine.sample_hash`).
     """
-    if hash_kind(traits) == "int64":
-        seed_lit = sa.literal(int(seed), sa.BigInteger())
-        if len(key_columns) == 1 and isinstance(key_columns[0].type, sa.Integer):
-            key = sa.func.coalesce(sa.cast(key_columns[0], sa.BigInteger()), sa.literal(0, sa.BigInteger()))
-            return sa.func.hashint8extended(key, seed_lit, type_=sa.BigInteger())
-        return sa.func.hashtextextended(_key_text(key_columns), seed_lit, type_=sa.BigInteger())
-    text = _key_text(key_columns).concat(sa.literal(f":{int(seed)}", sa.String()))
-    if traits.name == "duckdb":  # md5_60: an integer column (no strings to carry), the same order
-        prefix = sa.literal("0x", sa.String()).concat(sa.func.substr(sa.func.md5(text, type_=sa.String()), 1, 15))
-        return sa.cast(prefix, sa.BigInteger())
-    if traits.name == "sqlite":
-        return getattr(sa.func, SQLITE_MD5)(text, type_=sa.String())
-    if traits.name == "trino":
-        return sa.func.lower(sa.func.to_hex(sa.func.md5(sa.func.to_utf8(text))), type_=sa.String())
-    return sa.func.md5(text, type_=sa.String())
-
-
-def _key_text(key_columns: Sequence[sa.ColumnElement]) -> sa.ColumnElement:
-    """``key1 || '|' || key2 ...`` with NULL parts as empty strings."""
-    parts: list[sa.ColumnElement] = []
-    for j, c in enumerate(key_columns):
-        if j:
-            parts.append(sa.literal("|", sa.String()))
-        parts.append(sa.func.coalesce(sa.cast(c, sa.String()), sa.literal("", sa.String())))
-    text = parts[0]
-    for part in parts[1:]:
-        text = text.concat(part)
-    return text
+    return traits.engine.sample_hash(key_columns, seed, hash_kind(traits))
 
 
 def values_query(rel: sa.FromClause, segment_key: str, plans: Sequence[MetricPlan],
