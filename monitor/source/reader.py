@@ -20,9 +20,9 @@ timestamp column is compared depends on what it stores:
 Two ways to compute a period
 ----------------------------
 ``compute: pushdown`` (the default) sends one aggregate query per period and reads
-back per-segment sums (:mod:`monitor.pushdown`), plus the values the rank test and
+back per-segment sums (:mod:`monitor.source.pushdown`), plus the values the rank test and
 the value checks need: all of them while the period is small, a seeded sample of at
-most ``sampling.cap`` rows per segment otherwise (:mod:`monitor.sampling`). Before
+most ``sampling.cap`` rows per segment otherwise (:mod:`monitor.source.sampling`). Before
 that, a probe reads at most a thousand rows to choose each metric's shift. On
 PostgreSQL and MySQL/MariaDB the queries of a period share one snapshot
 (``REPEATABLE READ``).
@@ -84,7 +84,7 @@ class PeriodData:
     null_segment_rows: int  # rows whose segment is NULL (counted, not grouped)
     segments: tuple[str, ...]  # segments with at least one row in the window
     compute: str = "local"  # how it was computed: "pushdown" or "local"
-    sampled: bool = False  # True when the values are a sample (see monitor.sampling)
+    sampled: bool = False  # True when the values are a sample (see monitor.source.sampling)
 
 
 @dataclass(frozen=True)

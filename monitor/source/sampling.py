@@ -1,7 +1,7 @@
 """Which values the rank test and the value checks get when the sums are pushed down.
 
 The moments of every segment always come from all its rows (one aggregate query;
-:mod:`monitor.pushdown`). Kruskal-Wallis, Dunn's pairs and the checks that need
+:mod:`monitor.source.pushdown`). Kruskal-Wallis, Dunn's pairs and the checks that need
 values (Brown-Forsythe, Shapiro-Wilk, the outlier share) get values chosen by this
 rule, configured by ``sampling`` (``mode``, ``cap``, ``seed``):
 
