@@ -51,7 +51,14 @@ from sqlalchemy.exc import NoSuchTableError, SQLAlchemyError
 
 from .. import engines
 from ..config import JobConfig, MetricConfig, SourceConfig
-from ..engines import EngineTraits, check_server_version, format_version, hash_array, one_line, redact
+from ..engines import (
+    EngineTraits,
+    check_server_version,
+    format_version,
+    hash_array,
+    one_line,
+    redact,
+)
 from ..errors import ConfigError, SourceError
 from ..model import MetricInput, QualityCounts, SegmentInput
 from ..periods import Period
