@@ -39,7 +39,6 @@ import math
 import threading
 from dataclasses import dataclass
 from datetime import datetime, timezone
-from pathlib import Path
 from typing import Any, Iterable, Mapping, Sequence
 
 import sqlalchemy as sa
