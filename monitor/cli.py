@@ -11,17 +11,23 @@ import argparse
 import json
 import logging
 import math
+import os
 import sys
 import traceback
 from pathlib import Path
-from typing import Any, Sequence, TextIO
+from typing import TYPE_CHECKING, Any, Sequence, TextIO
 
 from . import __version__
-from .config import load_config
-from .errors import PeriodBusy, SegwatchError, UsageError
-from .runner import Job, PeriodReport
+from .errors import EXIT_BUSY, EXIT_FAILED, SegwatchError, UsageError
+
+if TYPE_CHECKING:  # the command line imports the heavy modules only when a command needs them
+    from .runner import PeriodReport
 
 log = logging.getLogger(__name__)
+
+#: exit status when stdout is closed before everything was written (``... | head``): 128 + SIGPIPE,
+#: what a shell reports for a program that a closed pipe stopped
+EXIT_PIPE_CLOSED = 141
 
 EXAMPLES = {
     "run": "segwatch run configs/demo.yaml --period 2026-W14 --json",
@@ -34,23 +40,45 @@ EXAMPLES = {
 }
 
 
-def build_parser() -> argparse.ArgumentParser:
-    common = argparse.ArgumentParser(add_help=False)
-    common.add_argument("--debug", action="store_true", help="show tracebacks and debug logging")
-    common.add_argument("-v", "--verbose", action="store_true", help="log progress to stderr")
+def _add_global_options(parser: argparse.ArgumentParser, *, top: bool) -> None:
+    """The options every command takes, before or after the command name.
 
+    On the subcommands they default to ``SUPPRESS``, so that an option given before the
+    command (``segwatch -v run ...``) is not reset by the subcommand's own default.
+    """
+    def default(value: Any) -> Any:
+        return value if top else argparse.SUPPRESS
+
+    g = parser.add_argument_group("logging (before or after the command)")
+    g.add_argument("--debug", action="store_true", default=default(False),
+                   help="show tracebacks and debug logging")
+    g.add_argument("-v", "--verbose", action="store_true", default=default(False), help="log progress to stderr")
+    g.add_argument("-q", "--quiet", action="store_true", default=default(False),
+                   help="only warnings and errors on stderr (no progress bar)")
+    g.add_argument("--log-format", choices=("text", "json"), default=default("text"),
+                   help="stderr log lines as text (default) or JSON Lines; times are ISO 8601 UTC")
+
+
+def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="segwatch",
         description="Watch recurring comparisons between segments, period after period.",
-        parents=[common],
+        epilog="exit codes: 0 done, 1 run failed, 2 bad usage or config, 3 skipped (another process has "
+               "the period), 4 the period had no rows",
     )
     parser.add_argument("--version", action="version", version=f"segwatch {__version__}")
+    _add_global_options(parser, top=True)
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
 
-    def add(name: str, help_text: str) -> argparse.ArgumentParser:
-        p = sub.add_parser(name, help=help_text, description=help_text, parents=[common],
+    def command(name: str, help_text: str, description: str | None = None) -> argparse.ArgumentParser:
+        p = sub.add_parser(name, help=help_text, description=description or help_text,
                            epilog=f"example: {EXAMPLES[name]}")
+        _add_global_options(p, top=False)
+        return p
+
+    def add(name: str, help_text: str) -> argparse.ArgumentParser:
+        p = command(name, help_text)
         p.add_argument("config", metavar="CONFIG", help="the job's YAML config file")
         return p
 
@@ -75,10 +103,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="how many stored periods the pictures over time cover (default: report.periods, 12)")
     p.add_argument("--out", metavar="FILE", required=True, help="the HTML file to write (replaced if it exists)")
 
-    p = sub.add_parser("serve", help="run every job on its schedule until SIGINT/SIGTERM, catching up missed periods",
-                       description="Run every job on its cron `schedule` (read in UTC) until SIGINT/SIGTERM; "
-                                   "at start and on every tick, compute each closed period not yet done.",
-                       parents=[common], epilog=f"example: {EXAMPLES['serve']}")
+    p = command("serve", "run every job on its schedule until SIGINT/SIGTERM, catching up missed periods",
+                "Run every job on its cron `schedule` (read in UTC) until SIGINT/SIGTERM; "
+                "at start and on every tick, compute each closed period not yet done.")
     p.add_argument("configs", nargs="+", metavar="CONFIG", help="job YAML config files, one job each")
     p.add_argument("--retry-minutes", type=float, default=5.0, metavar="N",
                    help="retry failed periods and undelivered alerts every N minutes (default 5)")
@@ -89,37 +116,128 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def main(argv: Sequence[str] | None = None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    level = logging.DEBUG if args.debug else logging.INFO if args.verbose else logging.WARNING
-    logging.basicConfig(level=level, stream=sys.stderr, format="%(levelname)s %(name)s: %(message)s")
+class OutputClosed(Exception):
+    """Whoever reads stdout has gone (``segwatch history ... | head``)."""
+
+
+class _Stdout:
+    """stdout for the commands: a closed pipe becomes :class:`OutputClosed`, told apart
+    from a broken pipe anywhere else (an alert command's stdin, a socket)."""
+
+    def __init__(self, stream: TextIO):
+        self._stream = stream
+
+    def write(self, text: str) -> int:
+        try:
+            return self._stream.write(text)
+        except BrokenPipeError:
+            raise OutputClosed from None
+
+    def flush(self) -> None:
+        try:
+            self._stream.flush()
+        except BrokenPipeError:
+            raise OutputClosed from None
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._stream, name)
+
+
+def _silence_stdout() -> None:
+    """Point the stdout descriptor at the null device, so that the interpreter's last
+    flush at exit finds no closed pipe (and prints no second error)."""
     try:
-        return COMMANDS[args.command](args, sys.stdout)
-    except PeriodBusy as exc:  # another process is computing it: say so, not an error
-        print(exc, file=sys.stderr)
-        return 0
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+    except (OSError, ValueError, AttributeError):  # no real descriptor (a test's capture): nothing to flush
+        pass
+
+
+def _log_level(args: argparse.Namespace) -> int:
+    if args.debug:
+        return logging.DEBUG
+    if args.verbose:
+        return logging.INFO
+    return logging.WARNING  # also under -q: warnings and errors only
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    out = _Stdout(sys.stdout)
+    try:
+        parser = build_parser()
+        try:
+            stdout, sys.stdout = sys.stdout, out  # --help and --version print through argparse
+            args = parser.parse_args(argv)
+        finally:
+            sys.stdout = stdout
+    except OutputClosed:
+        _silence_stdout()
+        return EXIT_PIPE_CLOSED
+    from . import logs
+
+    handler = logs.configure(_log_level(args), args.log_format, sys.stderr)
+    try:
+        return _dispatch(args, out)
+    finally:
+        logs.remove(handler)
+
+
+def _say_error(args: argparse.Namespace, message: str, code: int) -> None:
+    """The one stderr line of a failure: ``Error: ...`` as text, or a JSON Lines record."""
+    if args.log_format == "json":
+        log.error("%s", message, extra={"exit_code": code})
+    else:
+        print(f"Error: {message}", file=sys.stderr)
+
+
+def _dispatch(args: argparse.Namespace, out: _Stdout) -> int:
+    try:
+        code = COMMANDS[args.command](args, out)
+        out.flush()
+        return code
+    except OutputClosed:
+        _silence_stdout()
+        return EXIT_PIPE_CLOSED
     except SegwatchError as exc:
+        if exc.exit_code == EXIT_BUSY:  # another process is computing it: a notice, not an error
+            if args.log_format == "json":
+                log.warning("%s", exc, extra={"exit_code": exc.exit_code})
+            else:
+                print(f"Skipped: {exc}", file=sys.stderr)
+            return exc.exit_code
         if args.debug:
             traceback.print_exc()
-        print(f"Error: {exc}", file=sys.stderr)
+        _say_error(args, str(exc), exc.exit_code)
         return exc.exit_code
     except KeyboardInterrupt:
-        print("Error: interrupted", file=sys.stderr)
-        return 1
+        _say_error(args, "interrupted", EXIT_FAILED)
+        return EXIT_FAILED
     except Exception as exc:  # noqa: BLE001 - the last line of defence: one line, exit 1
         if args.debug:
             traceback.print_exc()
-        print(f"Error: unexpected {type(exc).__name__}: {exc} (run again with --debug for details)",
-              file=sys.stderr)
-        return 1
+        _say_error(args, f"unexpected {type(exc).__name__}: {exc} (run again with --debug for details)",
+                   EXIT_FAILED)
+        return EXIT_FAILED
 
 
 # ------------------------------------------------------------------ commands
 
 
+def _load(path: str) -> Any:
+    from .config import load_config
+
+    return load_config(path)
+
+
+def _job(cfg: Any) -> Any:
+    from .runner import Job
+
+    return Job(cfg)
+
+
 def cmd_run(args: argparse.Namespace, out: TextIO) -> int:
-    with Job(load_config(args.config)) as job:
+    with _job(_load(args.config)) as job:
         report = job.run(args.period)
     if args.json:
         json.dump(report.to_json(), out, indent=2)
@@ -130,9 +248,9 @@ def cmd_run(args: argparse.Namespace, out: TextIO) -> int:
 
 
 def cmd_backfill(args: argparse.Namespace, out: TextIO) -> int:
-    with Job(load_config(args.config)) as job:
+    with _job(_load(args.config)) as job:
         periods = job.periods(args.first, args.last)
-        bar = Progress(len(periods)) if sys.stderr.isatty() and not args.json else None
+        bar = Progress(len(periods)) if sys.stderr.isatty() and not args.json and not args.quiet else None
         reports = []
         for i, p in enumerate(periods):
             if bar:
@@ -149,8 +267,8 @@ def cmd_backfill(args: argparse.Namespace, out: TextIO) -> int:
 
 
 def cmd_history(args: argparse.Namespace, out: TextIO) -> int:
-    cfg = load_config(args.config)
-    with Job(cfg) as job:
+    cfg = _load(args.config)
+    with _job(cfg) as job:
         names = [m.name for m in cfg.metrics]
         if args.metric is not None and args.metric not in names:
             raise UsageError(
@@ -172,10 +290,10 @@ def cmd_history(args: argparse.Namespace, out: TextIO) -> int:
 
 
 def cmd_check(args: argparse.Namespace, out: TextIO) -> int:
-    cfg = load_config(args.config)
+    cfg = _load(args.config)
     out.write(f"config   {cfg.path}: job {cfg.job}, {len(cfg.metrics)} metrics, period {cfg.period}, "
               f"zone {cfg.timezone}\n")
-    with Job(cfg) as job:
+    with _job(cfg) as job:
         info = job.source.describe()
         out.write(f"source   {info.dialect} {info.server_version}: {len(info.columns)} columns, "
                   f"all configured columns present\n")
@@ -191,7 +309,7 @@ def cmd_serve(args: argparse.Namespace, out: TextIO) -> int:
 
     from .scheduler import Service
 
-    service = Service([load_config(path) for path in args.configs], retry_minutes=args.retry_minutes)
+    service = Service([_load(path) for path in args.configs], retry_minutes=args.retry_minutes)
 
     def on_signal(signum: int, _frame: Any) -> None:
         log.info("received %s", signal.Signals(signum).name)
@@ -220,8 +338,8 @@ def cmd_serve(args: argparse.Namespace, out: TextIO) -> int:
 def cmd_alerts(args: argparse.Namespace, out: TextIO) -> int:
     from .alerts import channel_display
 
-    cfg = load_config(args.config)
-    with Job(cfg) as job:
+    cfg = _load(args.config)
+    with _job(cfg) as job:
         outcome = None
         if args.retry:
             job.history.requeue(job.clock.now())
@@ -267,8 +385,8 @@ def cmd_report(args: argparse.Namespace, out: TextIO) -> int:
 
     if args.periods is not None and args.periods < 1:
         raise UsageError(f"--periods: give a whole number of at least 1, not {args.periods}")
-    cfg = load_config(args.config)
-    with Job(cfg) as job:
+    cfg = _load(args.config)
+    with _job(cfg) as job:
         path = write_report(job, args.period, Path(args.out), args.periods)
     out.write(f"wrote {path}\n")
     return 0

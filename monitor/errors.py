@@ -15,12 +15,29 @@ The tree (every exception class of the package is here)::
     │   ├── HistoryError         the history database could not be reached, created or written
     │   │   └── LeaseLost        the run's lease was taken over before it stored its results
     │   ├── AlertError           an alert could not be delivered
-    │   └── PeriodBusy           exit 0: another process holds the period's lease
+    │   └── PeriodBusy           exit 3: another process holds the period's lease
     └── DeliveryError            one sink's delivery attempt failed (temporary or not); the
                                  relay turns it into a retry or a dead letter, never raised out
+
+Exit codes of the command line (the README's list; 0, 1 and 2 are the outside
+contract's, 3 and 4 were added to it):
+
+====  ===========================================================================
+0     success, whether or not anything was flagged
+1     the run failed (source unreachable, SQL error, history not writable)
+2     bad usage or bad config
+3     skipped: another process holds the period's lease (nothing started; try later)
+4     the period had no rows in the source (nothing stored)
+====  ===========================================================================
 """
 
 from __future__ import annotations
+
+EXIT_OK = 0
+EXIT_FAILED = 1
+EXIT_USAGE = 2
+EXIT_BUSY = 3
+EXIT_EMPTY = 4
 
 
 class SegwatchError(Exception):
@@ -60,9 +77,9 @@ class LeaseLost(HistoryError):
 
 
 class PeriodBusy(SegwatchError):
-    """Another process holds the period's lease; this run did not start (exit code 0)."""
+    """Another process holds the period's lease; this run did not start (exit code 3)."""
 
-    exit_code = 0
+    exit_code = EXIT_BUSY
 
 
 class DeliveryError(Exception):

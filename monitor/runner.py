@@ -12,7 +12,7 @@
 
 Every run goes through the period ledger (:mod:`monitor.store.ledger`): it first claims the
 period's lease (another process holding it raises :class:`~monitor.errors.PeriodBusy`,
-exit code 0: nothing started), marks the period ``running``, renews the lease while
+exit code 3: nothing started), marks the period ``running``, renews the lease while
 it computes, and stores results, events, outbox rows and the ``done`` mark in one
 transaction that also checks the lease is still ours. A failure on the way (source
 unreachable, history not writable, anything unexpected) marks the period ``failed``
@@ -153,7 +153,8 @@ class Job:
         claim = self.ledger.claim(period.ident)
         if not claim.won:
             raise PeriodBusy(f"period {period.ident} of job {cfg.job} is being computed by {claim.owner} "
-                             f"until {iso_utc(claim.expires_at)}; not started")
+                             f"until {iso_utc(claim.expires_at)}; not started (if that process has stopped, "
+                             f"run again after that time)")
         if only_if_owed and self.settled(claim.entry, period):
             self.ledger.release(claim)
             log.info("job %s: %s was completed by another run meanwhile", cfg.job, period.ident)

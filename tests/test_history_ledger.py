@@ -416,7 +416,8 @@ def test_job_runs_rerun_and_refuse_a_held_period_on_each_backend(history_url, tm
         with pytest.raises(PeriodBusy) as busy:
             job.run("2026-W10")
         assert str(busy.value) == (f"period 2026-W10 of job hubs is being computed by {other.owner} "
-                                   "until 2026-03-16T06:10:00Z; not started")
-        assert busy.value.exit_code == 0
+                                   "until 2026-03-16T06:10:00Z; not started (if that process has stopped, "
+                                   "run again after that time)")
+        assert busy.value.exit_code == 3
         assert json.loads(lines[0])["job"] == "hubs"
         assert Ledger(job.history, clock).holder(RELAY_RESOURCE) is None  # delivery gave its lease back

@@ -382,7 +382,7 @@ class Source:
                 last = exc
                 if attempt < CONNECT_ATTEMPTS:
                     wait = RETRY_BASE_SECONDS * 2 ** (attempt - 1)
-                    log.warning("source %s unreachable (attempt %d): %s; retrying in %.1fs",
+                    log.info("source %s unreachable (attempt %d): %s; retrying in %.1fs",
                                 redact(self.cfg.url), attempt, one_line(exc), wait)
                     time.sleep(wait)
         raise SourceError(

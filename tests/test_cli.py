@@ -1,0 +1,268 @@
+"""The command line as a user meets it: global options in either position, log lines,
+a pipe closed early, start-up imports, exit codes and what the terminal is shown.
+
+The data are a small invented SQLite table (three hubs, two ISO weeks), built here.
+"""
+
+from __future__ import annotations
+
+import ast
+import json
+import os
+import re
+import sqlite3
+import subprocess
+import sys
+import tomllib
+from datetime import datetime, timedelta
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from monitor.cli import EXIT_PIPE_CLOSED, build_parser, main
+
+ROOT = Path(__file__).resolve().parents[1]
+ENV = {**os.environ, "PYTHONPATH": str(ROOT)}
+WEEK1 = datetime(2026, 3, 2)  # Monday of 2026-W10
+STAMP = r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d\.\d{3}Z"
+
+
+def _write_project(folder: Path, hubs=("A", "B", "C"), weeks: int = 2) -> Path:
+    rng = np.random.default_rng(11)
+    con = sqlite3.connect(folder / "src.sqlite")
+    con.execute("CREATE TABLE parcels (ts TEXT, hub TEXT, dwell REAL)")
+    rows = []
+    for w in range(weeks):
+        monday = WEEK1 + timedelta(days=7 * w)
+        for i, h in enumerate(hubs):
+            for _ in range(30):
+                ts = monday + timedelta(hours=float(rng.uniform(0, 167)))
+                rows.append((ts.strftime("%Y-%m-%d %H:%M:%S"), h, float(rng.normal(20 + (5 * w if i == 0 else 0), 3))))
+    con.executemany("INSERT INTO parcels VALUES (?, ?, ?)", rows)
+    con.commit()
+    con.close()
+    cfg = folder / "job.yaml"
+    cfg.write_text(
+        "job: hubs\n"
+        "source:\n  url: sqlite:///src.sqlite\n  table: parcels\n  time_column: ts\n  segment_column: hub\n"
+        "period: week\ntimezone: UTC\n"
+        "metrics:\n  - column: dwell\n    test: anova\n"
+        "history: {url: 'sqlite:///state/history.sqlite'}\n"
+        "alerts:\n  - type: log\n    path: logs/alerts.jsonl\n")
+    return cfg
+
+
+@pytest.fixture()
+def project(tmp_path: Path) -> Path:
+    return _write_project(tmp_path)
+
+
+# ------------------------------------------------------------------ global options
+
+
+@pytest.mark.parametrize("argv", [
+    ["-v", "run", "job.yaml"], ["run", "job.yaml", "-v"], ["run", "-v", "job.yaml"],
+    ["--verbose", "history", "job.yaml"], ["history", "job.yaml", "--verbose"],
+])
+def test_verbose_is_honoured_before_or_after_the_command(argv):
+    assert build_parser().parse_args(argv).verbose is True
+
+
+@pytest.mark.parametrize("argv", [["--debug", "check", "x.yaml"], ["check", "x.yaml", "--debug"]])
+def test_debug_is_honoured_before_or_after_the_command(argv):
+    args = build_parser().parse_args(argv)
+    assert args.debug is True and args.verbose is False
+
+
+@pytest.mark.parametrize("argv", [["-q", "run", "x.yaml"], ["run", "x.yaml", "-q"], ["--quiet", "serve", "x.yaml"]])
+def test_quiet_is_accepted_in_either_position(argv):
+    assert build_parser().parse_args(argv).quiet is True
+
+
+def test_log_format_either_position_and_default():
+    parser = build_parser()
+    assert parser.parse_args(["run", "x.yaml"]).log_format == "text"
+    assert parser.parse_args(["--log-format", "json", "run", "x.yaml"]).log_format == "json"
+    assert parser.parse_args(["run", "x.yaml", "--log-format", "json"]).log_format == "json"
+
+
+def test_debug_before_the_command_shows_the_traceback(project: Path, capsys):
+    assert main(["--debug", "run", str(project), "--period", "nonsense"]) == 2
+    assert "Traceback" in capsys.readouterr().err
+
+
+def test_verbose_before_the_command_logs_timestamped_lines(project: Path, capsys):
+    assert main(["-v", "run", str(project), "--period", "2026-W10"]) == 0
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err, "-v before the command printed no log lines"
+    for line in err:
+        assert re.match(rf"^{STAMP} (INFO|WARNING|ERROR|DEBUG) [\w.]+: ", line), line
+    assert any("computing 2026-W10" in line for line in err)
+
+
+def test_json_log_format_writes_json_lines(project: Path, capsys):
+    assert main(["run", str(project), "--period", "2026-W10", "-v", "--log-format", "json"]) == 0
+    lines = capsys.readouterr().err.strip().splitlines()
+    assert lines
+    for line in lines:
+        rec = json.loads(line)
+        assert set(rec) >= {"time", "level", "logger", "message"}
+        assert re.fullmatch(STAMP, rec["time"]) and rec["level"] in {"info", "warning", "error", "debug"}
+
+
+def test_json_log_format_error_is_one_json_line_with_the_exit_code(project: Path, capsys):
+    assert main(["--log-format", "json", "run", str(project), "--period", "2026-03"]) == 2
+    lines = capsys.readouterr().err.strip().splitlines()
+    assert len(lines) == 1
+    rec = json.loads(lines[0])
+    assert rec["level"] == "error" and rec["exit_code"] == 2 and "2026-03" in rec["message"]
+
+
+def test_quiet_run_prints_nothing_on_stderr(project: Path, capsys):
+    assert main(["-q", "run", str(project), "--period", "2026-W10"]) == 0
+    assert capsys.readouterr().err == ""
+
+
+def test_a_newline_in_a_logged_value_cannot_forge_a_log_line():
+    import logging
+
+    from monitor.logs import TextFormatter
+
+    rec = logging.LogRecord("monitor.x", logging.WARNING, __file__, 1, "segment %s", ("A\nERROR forged\x1b[31m",),
+                            None)
+    line = TextFormatter().format(rec)
+    assert "\n" not in line and "\x1b" not in line and "A\\nERROR forged\\x1b[31m" in line
+
+
+# ------------------------------------------------------------------ a pipe closed early
+
+
+def _closed_stdout(argv: list[str], cwd: Path) -> subprocess.CompletedProcess:
+    """Run segwatch with a stdout whose reader has already gone (as ``| head`` leaves it)."""
+    proc = subprocess.Popen([sys.executable, "-m", "monitor", *argv], cwd=cwd, env=ENV,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    proc.stdout.close()  # no reader left: the first write fails with EPIPE
+    err = proc.stderr.read()
+    proc.stderr.close()
+    return subprocess.CompletedProcess(argv, proc.wait(), "", err)
+
+
+def test_history_json_into_a_closed_pipe_ends_quietly(project: Path):
+    assert main(["run", str(project), "--period", "2026-W10"]) == 0
+    done = _closed_stdout(["history", str(project), "--json"], project.parent)
+    assert done.stderr == "" and done.returncode == EXIT_PIPE_CLOSED == 141
+
+
+def test_help_into_a_closed_pipe_ends_quietly(tmp_path: Path):
+    done = _closed_stdout(["--help"], tmp_path)
+    assert done.stderr == "" and done.returncode == 141
+
+
+def test_a_broken_pipe_elsewhere_is_still_an_error(project: Path, capsys, monkeypatch):
+    """Only stdout's reader going away is quiet; a broken pipe inside a command is reported."""
+    import monitor.cli as cli
+
+    def boom(args, out):
+        raise BrokenPipeError(32, "Broken pipe")
+
+    monkeypatch.setitem(cli.COMMANDS, "check", boom)
+    assert main(["check", str(project)]) == 1
+    assert "BrokenPipeError" in capsys.readouterr().err
+
+
+# ------------------------------------------------------------------ start-up
+
+
+_IMPORTS = """
+import sys
+from monitor.cli import main
+try:
+    code = main(sys.argv[1:])
+except SystemExit as exc:
+    code = exc.code
+heavy = sorted({m.split(".")[0] for m in sys.modules} & {"sqlalchemy", "apscheduler", "numpy", "scipy", "pandas",
+                                                         "matplotlib", "statsmodels"})
+print("exit", code, "heavy", ",".join(heavy) or "none", file=sys.stderr)
+"""
+
+
+@pytest.mark.parametrize("argv", [["--help"], ["--version"], ["run", "missing.yaml"], ["run", "bad.yaml"],
+                                  ["check", "late.yaml"]])
+def test_help_version_and_config_errors_import_no_heavy_module(tmp_path: Path, argv):
+    (tmp_path / "bad.yaml").write_text(
+        "source: {url: 'sqlite:///a.sqlite', table: t, time_column: ts, segment_column: s}\n"
+        "period: weak\nmetrics: [{column: x}]\n")
+    # a mistake after the URL and the schedule: found before SQLAlchemy or APScheduler is loaded
+    (tmp_path / "late.yaml").write_text(
+        "source: {url: 'postgresql://u@db.example:5432/x', table: t, time_column: ts, segment_column: s}\n"
+        "period: week\nmetrics: [{column: x}]\nschedule: '0 6 * * mon'\nconfirm: 0\n")
+    proc = subprocess.run([sys.executable, "-c", _IMPORTS, *argv], cwd=tmp_path, env=ENV,
+                          capture_output=True, text=True)
+    last = proc.stderr.strip().splitlines()[-1]
+    assert last.endswith("heavy none"), proc.stderr
+    assert last.startswith("exit 0" if argv[0].startswith("--") else "exit 2"), proc.stderr
+
+
+def test_cli_imports_where_fcntl_does_not_exist(tmp_path: Path):
+    """As on Windows: no fcntl module. The command line starts and the alert log is written."""
+    code = (
+        "import sys\n"
+        "sys.modules['fcntl'] = None  # import fcntl now raises ImportError\n"
+        "import monitor.cli, monitor.runner, monitor.alerts\n"
+        "from pathlib import Path\n"
+        "sink = monitor.alerts.LogSink(Path(sys.argv[1]))\n"
+        "sink.send('job', '2026-W10', [{'event_key': 'k1', 'kind': 'emerged', 'metric': 'm', 'segment': None,\n"
+        "           'message': 'x', 'period': '2026-W10', 'job': 'job', 'detected_at': '2026-01-01T00:00:00Z'}])\n"
+        "print(monitor.alerts.fcntl)\n")
+    out = tmp_path / "alerts.jsonl"
+    proc = subprocess.run([sys.executable, "-c", code, str(out)], env=ENV, capture_output=True, text=True)
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stdout.strip() == "None"
+    assert json.loads(out.read_text().splitlines()[0])["event_key"] == "k1"
+
+
+def test_statsmodels_is_a_test_dependency_only():
+    project = tomllib.loads((ROOT / "pyproject.toml").read_text())["project"]
+    runtime = [re.split(r"[<>=!\[ ]", d)[0].lower() for d in project["dependencies"]]
+    assert "statsmodels" not in runtime
+    assert any(d.lower().startswith("statsmodels") for d in project["optional-dependencies"]["test"])
+    importers = []
+    for path in (ROOT / "monitor").rglob("*.py"):
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            names = ([a.name for a in node.names] if isinstance(node, ast.Import)
+                     else [node.module or ""] if isinstance(node, ast.ImportFrom) else [])
+            if any(n == "statsmodels" or n.startswith("statsmodels.") for n in names):
+                importers.append(str(path.relative_to(ROOT)))
+    assert importers == []
+
+
+def test_top_level_api_is_importable_lazily():
+    proc = subprocess.run([sys.executable, "-c",
+                           "import sys, monitor; assert 'monitor.runner' not in sys.modules; "
+                           "from monitor import Job, load_config; print(Job.__name__, load_config.__name__)"],
+                          env=ENV, capture_output=True, text=True)
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stdout.split() == ["Job", "load_config"]
+
+
+# ------------------------------------------------------------------ exit codes
+
+
+def test_a_period_held_by_a_process_on_another_host_exits_3(project: Path, capsys, monkeypatch):
+    """A lease left by a crashed run under another host name (a container restarted under a new
+    name): this host cannot tell that process is gone, so the run is skipped -- with its own exit
+    code, which a cron wrapper can retry on -- and the line says when the lease runs out."""
+    from monitor import ledger as ledger_mod
+    from monitor.config import load_config
+    from monitor.runner import Job
+
+    with Job(load_config(project)) as job, monkeypatch.context() as m:
+        m.setattr(ledger_mod, "new_owner", lambda: "otherbox:14861:0123")
+        assert job.ledger.claim("2026-W10").won
+    assert main(["run", str(project), "--period", "2026-W10"]) == 3
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1
+    assert err[0].startswith("Skipped: period 2026-W10 of job hubs is being computed by otherbox:14861:0123 until ")
+    assert "if that process has stopped, run again after that time" in err[0]
+    assert main(["run", str(project), "--period", "2026-W11"]) == 0  # other periods are not blocked
