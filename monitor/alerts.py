@@ -48,7 +48,6 @@ destination) and ``send(job, period, events)``, raising :class:`DeliveryError`.
 
 from __future__ import annotations
 
-import fcntl
 import hashlib
 import http.client
 import json
@@ -76,6 +75,11 @@ from .errors import DeliveryError
 from .model import Event
 from .store.history import History, is_op
 from .store.ledger import RELAY_RESOURCE, Ledger
+
+try:  # POSIX; elsewhere (Windows) the log file is written without an advisory lock
+    import fcntl
+except ImportError:  # pragma: no cover - exercised by hiding the module in a test
+    fcntl = None  # type: ignore[assignment]
 
 log = logging.getLogger(__name__)
 
@@ -142,7 +146,8 @@ class LogSink:
         except OSError as exc:
             raise DeliveryError(f"cannot open alert log {self.path}: {exc.strerror}", temporary=True) from exc
         try:
-            fcntl.flock(fd, fcntl.LOCK_EX)
+            if fcntl is not None:
+                fcntl.flock(fd, fcntl.LOCK_EX)
             present = _keys_present(fd, [e["event_key"] for e in events])
             data = "".join(json.dumps(_line(e), ensure_ascii=False, default=str) + "\n"
                            for e in events if e["event_key"] not in present)

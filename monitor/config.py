@@ -37,19 +37,15 @@ import math
 import os
 import re
 from collections.abc import Mapping
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, fields, replace
 from datetime import date
 from pathlib import Path
 from typing import Any, Callable, ClassVar, NoReturn, Union
-from urllib.parse import urlsplit
+from urllib.parse import quote, unquote, urlsplit
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError, available_timezones
 
 import yaml
-from apscheduler.triggers.cron import CronTrigger
-from sqlalchemy.engine import make_url
-from sqlalchemy.exc import ArgumentError
 
-from monitor import engines
 from monitor.errors import ConfigError
 
 __all__ = [
@@ -467,7 +463,8 @@ def parse_config(data: Mapping, path: str | os.PathLike[str], environ: Mapping[s
     quality = r.section(top, "quality", "", ("max_bad_share", "min_rows_per_segment"))
     posthoc = r.section(top, "posthoc", "", ("dunn_adjust", "confidence"))
     default_history = f"sqlite:///{r.folder / '.segwatch' / 'history.sqlite'}"
-    return JobConfig(
+    schedule = _schedule(r, top, parse=False)  # the cron parser (APScheduler) only once all else is valid
+    config = JobConfig(
         job=job,
         path=Path(os.path.normpath(path.absolute())),
         source=source,
@@ -481,7 +478,7 @@ def parse_config(data: Mapping, path: str | os.PathLike[str], environ: Mapping[s
         ),
         history=HistoryConfig(url=_db_url(r, history, "url", "history", default=default_history)),
         alerts=_alerts(r, top),
-        schedule=_schedule(r, top),
+        schedule=schedule,
         quality=QualityConfig(
             max_bad_share=r.number(quality, "max_bad_share", "quality", lambda x: 0 <= x <= 1,
                                    "a share from 0 to 1, e.g. 0.05", default=0.05),
@@ -517,6 +514,10 @@ def parse_config(data: Mapping, path: str | os.PathLike[str], environ: Mapping[s
             attach=r.boolean(report, "attach", "report", default=False),
         ),
     )
+    if schedule is not None:
+        _schedule(r, top)
+    return replace(config, source=replace(config.source, url=_file_url(r, config.source.url)),
+                   history=replace(config.history, url=_file_url(r, config.history.url)))
 
 
 def _open_unit(x: float) -> bool:
@@ -741,7 +742,7 @@ def _positive(x: float) -> bool:
     return x > 0
 
 
-def _schedule(r: _Reader, top: dict) -> str | None:
+def _schedule(r: _Reader, top: dict, *, parse: bool = True) -> str | None:
     accepted = "5 cron fields with day names, like '0 6 * * mon' or '30 7 * * mon-fri'"
     text = r.text(top, "schedule", "", accepted, default=None)
     if text is None:
@@ -756,6 +757,10 @@ def _schedule(r: _Reader, top: dict) -> str | None:
     if parts[2] != "*" and parts[4] != "*":
         r.fail("schedule", "restricts both day-of-month and day-of-week (cron fires when either matches,"
                " the scheduler only when both do); restrict one of them", text, accepted)
+    if not parse:
+        return " ".join(parts)
+    from apscheduler.triggers.cron import CronTrigger  # imported here: config errors stay fast
+
     try:
         CronTrigger.from_crontab(text, timezone="UTC")
     except ValueError as exc:
@@ -763,18 +768,44 @@ def _schedule(r: _Reader, top: dict) -> str | None:
     return " ".join(parts)
 
 
+# The form of an SQLAlchemy URL, as SQLAlchemy's own parser (sqlalchemy.engine.url._parse_url) reads
+# it; checked here without importing SQLAlchemy, so that a bad config fails fast.
+_URL = re.compile(
+    r"""(?P<name>[\w+]+)://
+        (?:(?P<username>[^:/]*)(?::(?P<password>[^@]*))?@)?
+        (?:(?:\[(?P<ipv6host>[^/?]+)\]|(?P<ipv4host>[^/:?]+))?(?::(?P<port>[^/?]*))?)?
+        (?:/(?P<database>[^?]*))?
+        (?:\?(?P<query>.*))?""",
+    re.X,
+)
+
+
 def _db_url(r: _Reader, section: dict, key: str, path: str, default: Any = _REQUIRED) -> str:
-    """A validated SQLAlchemy URL; a relative SQLite/DuckDB file becomes absolute."""
+    """A database URL of SQLAlchemy's form (a relative file is made absolute later, by :func:`_file_url`)."""
     accepted = "an SQLAlchemy URL like sqlite:///data/depots.sqlite or postgresql://user@host/db"
     text = r.text(section, key, path, accepted, default=default)
-    try:
-        url = make_url(text)
-    except ArgumentError:
+    url = _URL.match(text)
+    if url is None:
         r.fail(_join(path, key), "is not a database URL", text, accepted)
-    database = url.database
-    if not engines.get(url.get_backend_name()).file_urls or not database or ":" in database:
+    if url["port"] and not url["port"].isdigit():
+        r.fail(_join(path, key), f"has a port that is not a number ({url['port']!r})", text, accepted)
+    return text
+
+
+def _file_url(r: _Reader, text: str) -> str:
+    """``text`` with a relative SQLite/DuckDB file made absolute (against the config's folder).
+
+    The engine registry says which engines name files in their URLs; it loads SQLAlchemy,
+    so this runs once every other key is valid (a bad config fails fast).
+    """
+    from monitor import engines
+
+    url = _URL.match(text)
+    database = unquote(url["database"]) if url["database"] is not None else None
+    if not engines.get(url["name"].split("+")[0]).file_urls or not database or ":" in database:
         return text  # a server, an in-memory database, or a file: / md: URI
-    return url.set(database=str(r.folder_path(database))).render_as_string(hide_password=False)
+    absolute = quote(str(r.folder_path(database)), safe=" +/")
+    return text[:url.start("database")] + absolute + text[url.end("database"):]
 
 
 def _join(path: str, key: Any) -> str:
