@@ -253,7 +253,7 @@ def test_a_period_held_by_a_process_on_another_host_exits_3(project: Path, capsy
     """A lease left by a crashed run under another host name (a container restarted under a new
     name): this host cannot tell that process is gone, so the run is skipped -- with its own exit
     code, which a cron wrapper can retry on -- and the line says when the lease runs out."""
-    from monitor import ledger as ledger_mod
+    from monitor.store import ledger as ledger_mod
     from monitor.config import load_config
     from monitor.runner import Job
 
