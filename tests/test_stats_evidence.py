@@ -149,6 +149,20 @@ class TestHysteresis:
         assert [d.quiet for d in out] == [False, False, True, True, True]
         assert [d.change for d in out] == ["on", None, None, "off", None]
 
+    def test_an_alarm_is_never_taken_back_within_two_periods(self):
+        # the period after an alarm still has the alarm's period in its window: never quiet
+        rng = np.random.default_rng(7)
+        for _ in range(2000):
+            out = run([1e-7] + list(rng.uniform(size=5)))
+            assert out[0].change == "on"
+            assert out[1].state.on and out[2].state.on
+
+    def test_weak_evidence_in_the_window_is_not_quiet(self):
+        # p_t and p_{t-1} each above 0.10, but their combination is not (0.12, 0.12 -> 0.048)
+        out = run([1e-7, 0.5, 0.12, 0.12, 0.6, 0.7])
+        assert [d.quiet for d in out] == [False, False, True, False, True, True]
+        assert [d.change for d in out][-1] == "off"
+
     def test_a_strong_period_resets_the_quiet_count(self):
         out = run([1e-6, 0.5, 0.6, 0.01, 0.5, 0.6, 0.7])
         assert [d.change for d in out] == ["on", None, None, None, None, None, "off"]

@@ -16,9 +16,9 @@ The pieces, each a pure function or a small frozen value:
   ``p_t`` and ``p_{t-1}`` (:func:`stouffer`); :class:`OnePeriodRule` - ``p* = p_t``.
 * :class:`Hysteresis` and :func:`step` - the announced state (on/off) of one test,
   period after period: on when ``p* <= level``; off again only after ``quiet_periods``
-  consecutive *quiet* periods, a quiet period being one whose two-period evidence
-  is above ``clear_above`` (far above the level), so that a standing difference
-  whose p-value hovers near the level does not flicker.
+  consecutive *quiet* periods, a quiet period being one whose two-period window has
+  every p-value above ``clear_above`` (far above the level), so that a standing
+  difference whose p-value hovers near the level does not flicker.
 * :func:`decide` - one period of a job: the level from the budget and the number of
   tests that have a p-value, then :func:`step` for each test.
 
@@ -278,10 +278,10 @@ class Hysteresis:
     Attributes
     ----------
     clear_above : float
-        A period is *quiet* when its two-period evidence (Stouffer's ``p_S`` of this and
-        the previous period, or ``p_t`` alone without a previous p-value) is above this
-        (default 0.10: the two periods together are not even suggestive), or when the
-        effect is below the practical threshold.
+        A period is *quiet* when its two-period window shows not even weak evidence:
+        this period's p-value, the previous period's (when there is one) and their
+        Stouffer combination are all above ``clear_above`` (default 0.10). A period
+        whose effect is below the practical threshold is quiet too.
     quiet_periods : int
         Consecutive quiet periods needed to clear (default 2).
 
@@ -289,11 +289,12 @@ class Hysteresis:
     -----
     The level to raise an alarm is about 0.001, the level to clear one 0.10: a
     difference that stands every period with p-values between the two stays
-    announced, and a false alarm (whose evidence was one unlucky period) clears after
-    the unlucky period has left the two-period window, usually two or three periods
-    later. The gap between the two thresholds is the hysteresis of a Schmitt trigger;
-    its cost is that a real change that ends is announced as cleared two or three
-    periods late.
+    announced. Because a quiet period's window must not reach back to a period with
+    evidence, the period after an alarm is never quiet; a false alarm (one unlucky
+    period) therefore clears three periods later at the earliest, usually three or
+    four, and is not taken back within two periods (no flapping). The gap between the
+    two thresholds is the hysteresis of a Schmitt trigger; its cost is that a real
+    change that ends is announced as cleared two or three periods after it ended.
     """
 
     clear_above: float = 0.10
@@ -394,8 +395,9 @@ def step(rule: Rule, hysteresis: Hysteresis, state: State | None, p_now: float |
     if not math.isfinite(ev.p_star):
         return Decision(ev, float(level), False, False, state)
     reject = bool(ev.p_star <= level) and important
-    window = ev.p_combined if math.isfinite(ev.p_combined) else ev.p_now
-    quiet = (not reject) and (window > hysteresis.clear_above or not important)
+    window = [ev.p_now] + ([ev.p_before, ev.p_combined] if ev.p_before is not None else [])
+    calm = all(p > hysteresis.clear_above for p in window)
+    quiet = (not reject) and (calm or not important)
     if not state.on:
         if reject:
             return Decision(ev, float(level), True, False, State(True, 0), "on")
