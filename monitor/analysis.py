@@ -12,8 +12,12 @@ Decision rules, written down once
 ---------------------------------
 * A segment with fewer values than ``quality.min_rows_per_segment`` (at least 2)
   is left out of the comparison and named in the metric's ``note``.
+* Each method (its omnibus test, effect size, post-hoc and many-to-one families,
+  segment-against-the-rest contrast, watched checks) is a module of
+  :mod:`monitor.methods`, found by name; nothing here switches on a method's name.
 * ``test: auto`` runs the assumption checks and picks the method with
-  :func:`monitor.stats.diagnostics.choose_method`; the reason is kept.
+  :func:`monitor.methods.choose` (the rule: :func:`monitor.stats.diagnostics.choose_method`);
+  the reason is kept.
 * A metric is *significant* when its q-value (the p-value adjusted across all
   metrics of the period by ``fdr.method``) is at most ``fdr.level``.
 * Pairs and segment flags are a second stage: they are read only inside a
@@ -22,10 +26,10 @@ Decision rules, written down once
 * A segment is flagged ``high``/``low`` when, in the post-hoc pairs, it is
   significantly above (below) at least half of the other segments and below
   (above) none (:func:`monitor.stats.flags.majority_of_pairs`). With a
-  ``reference`` segment, the pairs are the many-to-one family (Dunnett after
-  ANOVA) and a segment is flagged when its gap to the reference is significant.
+  ``reference`` segment, the pairs are the method's many-to-one family (Dunnett
+  after ANOVA) and a segment is flagged when its gap to the reference is significant.
 * Only the checks in ``relevant_checks`` (marked ``watched`` in the JSON) raise
-  assumption events; see :func:`relevant_checks`.
+  assumption events; see :func:`monitor.methods.watched_checks`.
 * A statistic that cannot be computed is ``None`` in the output with the reason in
   ``note``; it is never significant.
 """
@@ -40,7 +44,9 @@ from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
 import numpy as np
 
+from . import methods, stats
 from .config import JobConfig
+from .methods import Segments
 from .model import (  # noqa: F401 - the shared vocabulary, re-exported for callers of this module
     QUANTILE_KEYS, QUANTILE_LEVELS, Check, EffectSize, MetricInput, MetricResult, PairRow, QualityCounts,
     SegmentInput, SegmentRow, Sensitivity,
@@ -50,19 +56,20 @@ if TYPE_CHECKING:
     from .stats.summary import Moments
 
 # The statistical routines (monitor.stats.diagnostics and its siblings) bring in scipy:
-# about 65 MB and most of a second of start-up. They are imported by the functions that
-# use them, not here, because this module's result types are needed by every command.
-# A run loads them either while a database server computes the period's sums (the
-# process only waits then: :func:`load_statistics_in_background`) or, for an engine
-# that works inside this process (DuckDB, SQLite), after the source has been read and
-# closed, so that the engine's buffers and scipy are never resident at once.
+# about 65 MB and most of a second of start-up. They are reached as attributes of the
+# lazy ``monitor.stats`` package (``stats.posthoc``), which imports each on first use,
+# because this module's result types are needed by every command. A run loads them
+# either while a database server computes the period's sums (the process only waits
+# then: :func:`load_statistics_in_background`) or, for an engine that works inside this
+# process (DuckDB, SQLite), after the source has been read and closed, so that the
+# engine's buffers and scipy are never resident at once.
 
 log = logging.getLogger(__name__)
 
 
 def load_statistics() -> None:
     """Import the statistical routines now (they are otherwise imported on first use)."""
-    from .stats import diagnostics, effects, flags, multiplicity, omnibus, posthoc, power  # noqa: F401
+    stats.load()
 
 
 def load_statistics_in_background() -> threading.Thread:
@@ -78,8 +85,6 @@ def load_statistics_in_background() -> threading.Thread:
     thread.start()
     return thread
 
-POSTHOC_FOR = {"anova": "tukey-kramer", "welch": "games-howell", "kruskal": "dunn"}
-MANY_TO_ONE_FOR = {"anova": "dunnett", "welch": "games-howell", "kruskal": "dunn"}
 
 _LEVELS = np.array(QUANTILE_LEVELS)
 
@@ -98,9 +103,7 @@ def segment_quantiles(values: np.ndarray | None, *, presorted: np.ndarray | None
         return ()
     if presorted is None:
         presorted = np.sort(np.asarray(values, dtype=float).ravel())
-    from .stats import diagnostics
-
-    return tuple(diagnostics.quantiles_of_sorted(presorted, _LEVELS).tolist())
+    return tuple(stats.diagnostics.quantiles_of_sorted(presorted, _LEVELS).tolist())
 
 
 # ---------------------------------------------------------------- per metric
@@ -110,35 +113,9 @@ MAX_PAIR_SEGMENTS = 100  # beyond this many segments, pairs are skipped (k(k-1)/
 DEFAULT_THRESHOLD_F = 0.25  # Cohen's "medium" f (common practice)
 
 
-def run_omnibus(test: str, labels: Sequence[str], groups: Sequence[Moments],
-                samples: Sequence[np.ndarray] | None, checks: Mapping[str, Check]
-                ) -> tuple[str, str, Any]:
-    """The method for ``test`` (``auto``: :func:`~monitor.stats.diagnostics.choose_method`
-    on ``checks``), the reason, and the omnibus result (Fisher's or Welch's ANOVA,
-    Kruskal-Wallis). Without ``samples`` a rank test falls back to Welch's ANOVA."""
-    from .stats import diagnostics, omnibus
-
-    if test == "auto":
-        choice = diagnostics.choose_method(groups, samples, checks, labels=labels)
-        method, reason = choice.method, choice.reason
-    else:
-        method, reason = test, f"set in the config (test: {test})"
-    if method == "kruskal" and samples is None:
-        method, reason = "welch", reason + "; values were not available for ranks, so Welch's ANOVA was used"
-    if method == "anova":
-        res = omnibus.fisher_anova(groups)
-    elif method == "welch":
-        res = omnibus.welch_anova(groups)
-    else:
-        res = omnibus.kruskal_wallis(samples)
-    return method, reason, res
-
-
 def analyse_metric(data: MetricInput, job: JobConfig, n_metrics: int = 1) -> MetricResult:
     """Compare the segments of one metric. q-value and the gated flags come later,
     from :func:`finalise`."""
-    from .stats import diagnostics, effects, flags, posthoc
-
     m = data.metric
     min_n = max(2, job.quality.min_rows_per_segment)
     # each segment's values sorted once: quantiles, medians, quartiles and Shapiro-Wilk read them
@@ -172,68 +149,61 @@ def analyse_metric(data: MetricInput, job: JobConfig, n_metrics: int = 1) -> Met
             else "no values in this period"
         )
         notes.insert(0, reason)
-        method = m.test if m.test != "auto" else "anova"
+        named = methods.named(m.test)
         return MetricResult(
-            metric=m.name, column=m.column, requested=m.test, method=method,
+            metric=m.name, column=m.column, requested=m.test, method=named.name,
             method_reason="not computed: " + reason, statistic=math.nan,
-            df=(math.nan,) if method == "kruskal" else (math.nan, math.nan),
+            df=named.nan_df,
             p_value=math.nan, effect_size=None, segments=tuple(rows), pairs=(),
             posthoc=None, assumptions={}, quality=data.quality, note="; ".join(notes),
             unit=m.unit, sample_size=data.sample_size,
         )
 
     checks: dict[str, Check] = (
-        diagnostics.run_checks(labels, groups, samples, presorted=[ordered[id(s)] for s in kept])
+        stats.diagnostics.run_checks(labels, groups, samples, presorted=[ordered[id(s)] for s in kept])
         if has_values else {}
     )
-    method, reason, res = run_omnibus(m.test, labels, groups, samples if has_values else None, checks)
+    segs = Segments.of(labels, groups, samples if has_values else None)
+    choice = methods.choose(m.test, segs, checks)
+    method, reason = choice.method, choice.reason
+    res = method.omnibus(segs)
     if res.note:
         notes.append(res.note)
 
-    extra: list[EffectSize] = []
-    if method == "kruskal":
-        effect = effects.epsilon_squared(res)
-    else:
-        effect = effects.omega_squared(res, confidence=job.posthoc.confidence)
-        extra = [effects.eta_squared(res), effects.cohens_f(res)]
+    effect = method.effect_size(res, job.posthoc.confidence)
+    extra = method.other_effect_sizes(res)
 
     reference = m.reference
     if reference is not None and reference not in labels:
         notes.append(f"reference segment {reference!r} has no usable values this period; "
                      "no comparisons with it were made")
     pairs: tuple[PairRow, ...] = ()
-    ph_name = POSTHOC_FOR[method]
-    log_scale = m.transform == "log" and method != "kruskal"  # Dunn diffs are mean-rank differences
-    conf = job.posthoc.confidence
+    family: methods.Family | None = method.posthoc
+    conf, adjust = job.posthoc.confidence, job.posthoc.dunn_adjust
     if math.isfinite(res.statistic):
         if reference is not None:
             if reference in labels:
-                ph_name = MANY_TO_ONE_FOR[method]
-                ph = posthoc.many_to_one(labels, samples if method == "kruskal" else groups, reference,
-                                         ph_name, confidence=conf, adjust=job.posthoc.dunn_adjust)
+                family = method.many_to_one
+                ph = method.pairs_to_reference(segs, reference, confidence=conf, adjust=adjust)
             else:
                 ph = None
         elif len(labels) > MAX_PAIR_SEGMENTS:
             ph = None
-            ph_name = None
+            family = None
             notes.append(f"{len(labels)} segments: more than {MAX_PAIR_SEGMENTS}, so no pairwise comparisons "
                          "were made; segments are flagged by their contrast with the rest instead")
-        elif method == "anova":
-            ph = posthoc.tukey_kramer(labels, groups, confidence=conf)
-        elif method == "welch":
-            ph = posthoc.games_howell(labels, groups, confidence=conf)
         else:
-            ph = posthoc.dunn(labels, samples, adjust=job.posthoc.dunn_adjust, confidence=conf)
+            ph = method.pairs(segs, confidence=conf, adjust=adjust)
+        # a diff on the log scale is a log ratio, unless the family compares mean ranks (Dunn)
+        log_scale = m.transform == "log" and family is not None and not family.ranks
         if ph is not None:
             if ph.note:
                 notes.append(ph.note)
             pairs = tuple(
                 PairRow(p.a, p.b, p.diff, p.p_adj, p.ci_low, p.ci_high, log_scale=log_scale) for p in ph.pairs
             )
-        if ph_name is None:  # too many segments for pairs: flag by each segment's contrast with the rest
-            contrasts = flags.segment_vs_rest(
-                labels, groups, samples if method == "kruskal" else None, method=method, alpha=job.alpha
-            )
+        if family is None:  # too many segments for pairs: flag by each segment's contrast with the rest
+            contrasts = method.versus_rest(segs, alpha=job.alpha)
             verdicts = {c.segment: (int(c.direction == "high"), int(c.direction == "low"), c.direction)
                         for c in contrasts}
         else:
@@ -248,13 +218,13 @@ def analyse_metric(data: MetricInput, job: JobConfig, n_metrics: int = 1) -> Met
         ]
 
     return MetricResult(
-        metric=m.name, column=m.column, requested=m.test, method=method,
+        metric=m.name, column=m.column, requested=m.test, method=method.name,
         method_reason=reason, statistic=res.statistic, df=tuple(res.df),
         p_value=res.p_value, effect_size=effect, segments=tuple(rows), pairs=pairs,
-        posthoc=ph_name, assumptions=checks, quality=data.quality,
+        posthoc=family.name if family is not None else None, assumptions=checks, quality=data.quality,
         note="; ".join(notes) or None, unit=m.unit, sample_size=data.sample_size,
         extra_effects=tuple(extra), reference=reference,
-        relevant_checks=relevant_checks(m.test, method, groups),
+        relevant_checks=methods.watched_checks(m.test, method, groups),
         sensitivity=sensitivity(groups, job, n_metrics, m.min_effect),
     )
 
@@ -267,13 +237,11 @@ def sensitivity(groups: Sequence[Moments], job: JobConfig, n_metrics: int,
     must pass under Benjamini-Hochberg (and Holm, Bonferroni), so "detectable"
     means detectable even when nothing else in the period is.
     """
-    from .stats import power
-
     sizes = [g.n for g in groups]
     if len(sizes) < 2 or sum(sizes) - len(sizes) < 1:
         return None
     alpha = job.fdr.level / max(1, n_metrics) if job.fdr.method != "none" else job.fdr.level
-    min_f = power.minimum_detectable_f(sizes, alpha=alpha, power=job.power)
+    min_f = stats.power.minimum_detectable_f(sizes, alpha=alpha, power=job.power)
     df_within = sum(sizes) - len(sizes)
     pooled_sd = math.sqrt(float(sum(_f(g.m2) for g in groups)) / df_within)
     min_diff = min_f * pooled_sd if math.isfinite(min_f) else math.nan
@@ -301,36 +269,14 @@ def _segment_verdicts(labels: Sequence[str], pairs: Sequence[PairRow], reference
     ``high``/``low`` when its gap to the reference is significant (the reference
     itself is never flagged).
     """
-    from .stats import flags
-
     if reference is None:
-        verdicts = flags.majority_of_pairs(labels, [(p.a, p.b, p.diff, p.p_adj) for p in pairs], alpha)
+        verdicts = stats.flags.majority_of_pairs(labels, [(p.a, p.b, p.diff, p.p_adj) for p in pairs], alpha)
         return {v.segment: (v.above, v.below, v.direction) for v in verdicts}
     out: dict[str, tuple[int, int, str | None]] = {s: (0, 0, None) for s in labels}
     for p in pairs:
         if math.isfinite(p.p_adj) and p.p_adj <= alpha and math.isfinite(p.diff) and p.diff != 0:
             out[p.a] = (1, 0, "high") if p.diff > 0 else (0, 1, "low")
     return out
-
-
-def relevant_checks(requested: str, method: str, groups: Sequence[Moments]) -> tuple[str, ...]:
-    """The assumption checks whose change is worth an event for this metric.
-
-    Equal spreads (Brown-Forsythe) matter for Fisher's ANOVA, and for ``auto``,
-    whose first choice it is. Normality matters for the ANOVAs only when some
-    segment is small (fewer than 30 values; common practice, leaning on the
-    central limit theorem for larger segments). Kruskal-Wallis, asked for
-    explicitly, assumes neither. The other checks (sd ratio, size ratio, outlier
-    share) are stored and shown but raise no events.
-    """
-    if method == "kruskal" and requested == "kruskal":
-        return ()
-    out = []
-    if requested in ("auto", "anova"):
-        out.append("brown_forsythe")
-    if groups and min(g.n for g in groups) < 30:
-        out.append("normality")
-    return tuple(out)
 
 
 # ---------------------------------------------------------------- across metrics
@@ -354,10 +300,8 @@ def finalise(results: Sequence[MetricResult], job: JobConfig) -> tuple[MetricRes
     Benjamini, Y. and Bogomolov, M. (2014). Selective inference on multiple
     families of hypotheses. JRSS B 76(1), 297-318.
     """
-    from .stats import multiplicity
-
     p = np.array([r.p_value for r in results], dtype=float)
-    q = multiplicity.adjust(p, job.fdr.method) if len(p) else p
+    q = stats.multiplicity.adjust(p, job.fdr.method) if len(p) else p
     sig_all = [bool(math.isfinite(qv) and qv <= job.fdr.level) for qv in q]
     m = int(np.isfinite(p).sum())
     level = job.alpha

@@ -17,7 +17,7 @@ import traceback
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Sequence, TextIO
 
-from . import __version__
+from . import __version__, methods
 from .errors import EXIT_BUSY, EXIT_FAILED, SegwatchError, UsageError
 
 if TYPE_CHECKING:  # the command line imports the heavy modules only when a command needs them
@@ -415,6 +415,11 @@ class Progress:
         sys.stderr.write("\n")
 
 
+def _statistic_text(method: str, value: str, df: Sequence[str]) -> str:
+    known = methods.find(method)
+    return known.statistic_text(value, df) if known else f"{method}({', '.join(df)}) = {value}"
+
+
 def _g(x: Any, digits: int = 3) -> str:
     if x is None or (isinstance(x, float) and not math.isfinite(x)):
         return "-"
@@ -438,7 +443,7 @@ def _table(header: Sequence[str], rows: Sequence[Sequence[str]]) -> str:
 def _metric_row(m: dict[str, Any]) -> list[str]:
     df = m.get("df") or []
     stat = "-" if m.get("statistic") is None else (
-        f"{'H' if m['method'] == 'kruskal' else 'F'}({', '.join(_g(d, 4) for d in df)}) = {_g(m['statistic'], 4)}")
+        _statistic_text(m["method"], _g(m["statistic"], 4), [_g(d, 4) for d in df]))
     eff = m.get("effect_size") or {}
     flagged = ", ".join(f"{s['segment']} {'▲' if s['flag'] == 'high' else '▼'}"
                         for s in m.get("segments", []) if s.get("flag"))

@@ -46,6 +46,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError, available_timezones
 
 import yaml
 
+from monitor import methods
 from monitor.errors import ConfigError
 
 __all__ = [
@@ -71,10 +72,14 @@ __all__ = [
 logger = logging.getLogger(__name__)
 
 PERIOD_KINDS = ("day", "week", "month")
-TESTS = ("auto", "anova", "welch", "kruskal")
 TRANSFORMS = ("none", "log", "log1p")
 ADJUSTMENTS = ("bh", "by", "holm", "bonferroni", "none")
 NAIVE_TIME = ("local", "utc")
+
+
+def tests() -> tuple[str, ...]:
+    """The accepted ``metrics[i].test`` values: ``auto`` and every registered test method."""
+    return (methods.AUTO, *methods.names())
 
 
 # -- the objects -------------------------------------------------------------------------
@@ -627,7 +632,7 @@ def _metrics(r: _Reader, top: dict, source: SourceConfig) -> tuple[MetricConfig,
         metrics.append(MetricConfig(
             column=column,
             name=name,
-            test=r.choice(spec, "test", path, TESTS, "test", default="auto"),
+            test=r.choice(spec, "test", path, tests(), "test", default=methods.AUTO),
             reference=r.text(spec, "reference", path, 'a segment value as text, numbers in quotes like "3"',
                              default=None),
             transform=r.choice(spec, "transform", path, TRANSFORMS, "transform", default="none"),

@@ -66,6 +66,7 @@ import math
 from dataclasses import dataclass, field
 from typing import Any, Mapping, Protocol, Sequence
 
+from . import methods
 from .config import JobConfig
 from .model import Event, MetricResult  # noqa: F401 - Event re-exported for callers of this module
 
@@ -468,8 +469,9 @@ def _gap_text(r: MetricResult, seg: str, unit: str | None, decimals: int | None,
               for x in (seg, r.reference)]
         return (f"{pct[0]:+.1f}% [{pct[1]:+.1f}%, {pct[2]:+.1f}%] (geometric means {_value(gm[0], unit, decimals)} "
                 f"vs {_value(gm[1], unit, decimals)}{test})")
-    if r.method == "kruskal":
-        return None  # a mean-rank difference has no unit to speak in
+    family = methods.family(r.posthoc)
+    if family is None or family.ranks:
+        return None  # a mean-rank difference (Dunn) has no unit to speak in
     ref_mean = rows[r.reference].mean if r.reference in rows else math.nan
     share = f", {100 * pair.diff / ref_mean:+.1f}% of {r.reference}'s mean" if ref_mean else ""
     return (f"{_signed(pair.diff, unit, decimals)} [{_signed(pair.ci_low, None, decimals)}, "

@@ -54,7 +54,7 @@ from typing import TYPE_CHECKING, Any, Callable, Mapping, Protocol, Sequence
 
 from scipy import stats as sps
 
-from .. import __version__
+from .. import __version__, methods
 from . import plots
 from ..model import QUANTILE_KEYS
 from ..config import JobConfig, MetricConfig
@@ -76,9 +76,6 @@ class JobLike(Protocol):
 
 log = logging.getLogger(__name__)
 
-METHOD_NAMES = {"anova": "Fisher's ANOVA", "welch": "Welch's ANOVA", "kruskal": "Kruskal-Wallis"}
-POSTHOC_NAMES = {"tukey-kramer": "Tukey-Kramer", "games-howell": "Games-Howell", "dunn": "Dunn",
-                 "dunnett": "Dunnett"}
 EFFECT_NAMES = {"omega_squared": "ω²", "eta_squared": "η²", "epsilon_squared": "ε²", "cohens_f": "Cohen's f"}
 KIND_ORDER = ("emerged", "cleared", "assumption_broken", "data_quality", "segment_missing", "segment_new",
               "assumption_restored")
@@ -278,13 +275,21 @@ def t_interval(n: Any, mean: Any, sd: Any, confidence: float = 0.95) -> tuple[fl
     return float(mean) - half, float(mean) + half
 
 
+def _method_label(name: Any, default: Any = "") -> str:
+    """A stored method name as people read it (the registered method's label)."""
+    method = methods.find(name)
+    return method.label if method else default
+
+
 def _stat_text(m: Mapping[str, Any]) -> str:
     if not _ok(m.get("statistic")):
         return "not computed"
-    letter = "H" if m.get("method") == "kruskal" else "F"
-    df = ", ".join(num(d, 4) if _ok(d) and d != int(d) else (str(int(d)) if _ok(d) else "–")
-                   for d in (m.get("df") or []))
-    return f"{letter}({df}) = {num(m['statistic'], 4)}"
+    df = [num(d, 4) if _ok(d) and d != int(d) else (str(int(d)) if _ok(d) else "–")
+          for d in (m.get("df") or [])]
+    method = methods.find(m.get("method"))
+    if method is None:  # a method this release does not know (stored by another one)
+        return f"{m.get('method')}({', '.join(df)}) = {num(m['statistic'], 4)}"
+    return method.statistic_text(num(m["statistic"], 4), df)
 
 
 def _effect_text(eff: Mapping[str, Any] | None) -> str:
@@ -311,7 +316,7 @@ def _check_name(key: str, long: bool = False) -> str:
 def _reason(m: Mapping[str, Any]) -> str:
     """The stored reason for the method, without a leading repeat of the method's name."""
     text = str(m.get("method_reason") or "")
-    name = METHOD_NAMES.get(m.get("method"), "")
+    name = _method_label(m.get("method"))
     if name and text.startswith(name + ":"):
         text = text[len(name) + 1:].strip()
     return text[:1].upper() + text[1:] if text else ""
@@ -508,7 +513,7 @@ def _overview(d: ReportData) -> str:
     rows = []
     for m in d.metrics:
         cfg = d.metric_config.get(m["metric"])
-        method = METHOD_NAMES.get(m.get("method"), m.get("method", ""))
+        method = _method_label(m.get("method"), m.get("method", ""))
         notes = _notes(m)
         why = f"<strong>{_e(method)}</strong>: {_e(_reason(m))}"
         if notes:
@@ -608,7 +613,7 @@ def _summary(d: ReportData, m: Mapping[str, Any], decimals: int | None) -> str:
 
 def _facts(d: ReportData, m: Mapping[str, Any]) -> str:
     items = [
-        ("Test", f"{_e(METHOD_NAMES.get(m.get('method'), m.get('method')))}. {_e(_reason(m))}"),
+        ("Test", f"{_e(_method_label(m.get('method'), m.get('method')))}. {_e(_reason(m))}"),
         ("Result", f"{_e(_stat_text(m))}, p {pval(m.get('p_value'))}, q {pval(m.get('q_value'))}"),
         ("Effect size", _e(_effect_text(m.get("effect_size")))
          + "".join(f"; {_e(_effect_text(x))}" for x in m.get("other_effect_sizes") or [] if x)),
@@ -878,7 +883,8 @@ def _pairs_figure(d: ReportData, m: Mapping[str, Any], decimals: int | None) -> 
         return ""
     level = m.get("pair_level") if _ok(m.get("pair_level")) else 0.05
     seg = d.segment_word
-    posthoc = POSTHOC_NAMES.get(m.get("posthoc") or "", m.get("posthoc") or "")
+    family = methods.family(m.get("posthoc"))
+    posthoc = family.label if family else m.get("posthoc") or ""
     gate = ("" if m.get("significant") else
             f" The metric does not differ this {PERIOD_WORDS.get(d.period_kind, 'period')}, so no pair counts as a "
             "finding; the values are shown for reference.")
@@ -946,7 +952,8 @@ def _pair_list(pairs: Sequence[Mapping[str, Any]], level: float) -> str:
 
 def _reference_table(m: Mapping[str, Any], decimals: int | None, level: float, seg: str) -> str:
     rows = []
-    ranks = m.get("posthoc") == "dunn"  # Dunn's diff is a gap in mean ranks: no units, no ratio
+    family = methods.family(m.get("posthoc"))
+    ranks = family is not None and family.ranks  # Dunn's diff is a gap in mean ranks: no units, no ratio
     for p in m.get("pairs") or []:
         if ranks:
             gap = num(p.get("diff"))

@@ -55,12 +55,12 @@ from monitor.analysis import (
     SegmentRow,
     analyse_period,
     finalise,
-    relevant_checks,
-    run_omnibus,
 )
+from monitor import methods
 from monitor.config import JobConfig, parse_config
 from monitor.events import Baseline, Event, derive_events, lookback
-from monitor.stats import diagnostics, effects, omnibus
+from monitor.methods import Segments
+from monitor.stats import diagnostics
 from monitor.stats.summary import Moments
 
 log = logging.getLogger(__name__)
@@ -71,7 +71,9 @@ DISTRIBUTIONS = ("normal", "lognormal", "t3")
 #: Log-scale sd of the lognormal errors: skewness 3.7, excess kurtosis 29 (strongly skewed).
 LOGNORMAL_SIGMA = 0.8
 
-METHODS = ("anova", "welch", "kruskal", "auto")
+#: The methods the harness compares on the same draws (the registered methods for
+#: continuous values, then ``auto``); each is run through the registry.
+METHODS = ("anova", "welch", "kruskal", methods.AUTO)
 
 #: The first simulated period (an ISO week); later ones follow week by week.
 FIRST_MONDAY = date(2026, 1, 5)
@@ -220,21 +222,17 @@ class MethodPValues:
 def method_pvalues(labels: Sequence[str], samples: Sequence[np.ndarray]) -> MethodPValues:
     """Fisher's, Welch's and Kruskal-Wallis p-values on the same data, and ``auto``'s.
 
-    Uses :func:`monitor.stats.omnibus.fisher_anova`, :func:`~monitor.stats.omnibus.welch_anova`,
-    :func:`~monitor.stats.omnibus.kruskal_wallis` and, for ``auto``,
-    :func:`monitor.stats.diagnostics.run_checks` with
-    :func:`~monitor.stats.diagnostics.choose_method`, exactly as the analysis does.
+    Each method's omnibus test through the registry (:func:`monitor.methods.get`) and,
+    for ``auto``, :func:`monitor.stats.diagnostics.run_checks` with
+    :func:`monitor.methods.choose`, exactly as the analysis does.
     """
     groups = [Moments.from_values(v) for v in samples]
-    p = {
-        "anova": omnibus.fisher_anova(groups).p_value,
-        "welch": omnibus.welch_anova(groups).p_value,
-        "kruskal": omnibus.kruskal_wallis(list(samples)).p_value,
-    }
+    segs = Segments.of(labels, groups, samples)
+    p = {name: methods.get(name).omnibus(segs).p_value for name in METHODS if name != methods.AUTO}
     checks = diagnostics.run_checks(labels, groups, samples)
-    choice = diagnostics.choose_method(groups, samples, checks, labels=labels)
+    choice = methods.choose(methods.AUTO, segs, checks)
     equal = all(checks[name].passed is not False for name in ("brown_forsythe", "sd_ratio"))
-    return MethodPValues(p["anova"], p["welch"], p["kruskal"], p[choice.method], choice.method, equal)
+    return MethodPValues(p["anova"], p["welch"], p["kruskal"], p[choice.method.name], choice.method.name, equal)
 
 
 # ---------------------------------------------------------------- the job and its inputs
@@ -306,9 +304,9 @@ def screen_metric(data: MetricInput, job: JobConfig, *, checks: bool = True) -> 
     base = dict(metric=m.name, column=m.column, requested=m.test, pairs=(), posthoc=None,
                 quality=data.quality, unit=m.unit, sample_size=data.sample_size, segments=rows)
     if len(kept) < 2:
-        method = m.test if m.test != "auto" else "anova"
-        return MetricResult(method=method, method_reason="not computed", statistic=math.nan,
-                            df=(math.nan,) if method == "kruskal" else (math.nan, math.nan),
+        named = methods.named(m.test)
+        return MetricResult(method=named.name, method_reason="not computed", statistic=math.nan,
+                            df=named.nan_df,
                             p_value=math.nan, effect_size=None, assumptions={},
                             note="fewer than two segments have enough values to compare", **base)
     labels = [s.segment for s in kept]
@@ -316,12 +314,14 @@ def screen_metric(data: MetricInput, job: JobConfig, *, checks: bool = True) -> 
     has_values = all(s.values is not None for s in kept)
     samples = [s.values if s.values is not None else np.empty(0) for s in kept]
     found = diagnostics.run_checks(labels, groups, samples) if has_values and (checks or m.test == "auto") else {}
-    method, reason, res = run_omnibus(m.test, labels, groups, samples if has_values else None, found)
-    effect = (effects.epsilon_squared(res) if method == "kruskal"
-              else effects.omega_squared(res, confidence=job.posthoc.confidence))
-    return MetricResult(method=method, method_reason=reason, statistic=res.statistic, df=tuple(res.df),
-                        p_value=res.p_value, effect_size=effect, assumptions=found, note=res.note,
-                        relevant_checks=relevant_checks(m.test, method, groups), **base)
+    segs = Segments.of(labels, groups, samples if has_values else None)
+    choice = methods.choose(m.test, segs, found)
+    res = choice.method.omnibus(segs)
+    effect = choice.method.effect_size(res, job.posthoc.confidence)
+    return MetricResult(method=choice.method.name, method_reason=choice.reason, statistic=res.statistic,
+                        df=tuple(res.df), p_value=res.p_value, effect_size=effect, assumptions=found,
+                        note=res.note, relevant_checks=methods.watched_checks(m.test, choice.method, groups),
+                        **base)
 
 
 def analyse_gated(inputs: Sequence[MetricInput], job: JobConfig) -> tuple[MetricResult, ...]:
