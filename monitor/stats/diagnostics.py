@@ -580,6 +580,10 @@ def choose_method(
     A check that could not be computed counts as not failed. Skewness is the
     moment coefficient ``g1`` of :class:`~monitor.stats.summary.Moments`.
 
+    The names returned are registered test methods: :func:`monitor.methods.choose`
+    resolves them (and runs Welch's ANOVA for ``'kruskal'`` when no values are
+    available); what each method then runs is in its module of :mod:`monitor.methods`.
+
     References
     ----------
     .. [1] Welch, B. L. (1951). On the comparison of several mean values: an
