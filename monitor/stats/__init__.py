@@ -22,19 +22,22 @@ if TYPE_CHECKING:  # for type checkers and readers: the submodules reached lazil
     from monitor.stats import (  # noqa: F401
         diagnostics,
         effects,
+        evidence,
         flags,
         multiplicity,
         omnibus,
         posthoc,
         power,
+        proportions,
+        stepdown,
         studentized,
         summary,
         warnings,
     )
 
 #: The submodules reached as attributes of the package (each imported on first access).
-SUBMODULES = ("diagnostics", "effects", "flags", "multiplicity", "omnibus", "posthoc", "power",
-              "studentized", "summary", "warnings")
+SUBMODULES = ("diagnostics", "effects", "evidence", "flags", "multiplicity", "omnibus", "posthoc", "power",
+              "proportions", "stepdown", "studentized", "summary", "warnings")
 
 #: The submodules a period's analysis uses (what :func:`load` imports).
 ANALYSIS_MODULES = ("diagnostics", "effects", "flags", "multiplicity", "omnibus", "posthoc", "power")
