@@ -297,6 +297,10 @@ def cmd_check(args: argparse.Namespace, out: TextIO) -> int:
         info = job.source.describe()
         out.write(f"source   {info.dialect} {info.server_version}: {len(info.columns)} columns, "
                   f"all configured columns present\n")
+        period = job.period()
+        sent = job.source.check_window(period)
+        out.write(f"window   {period.ident}: {sent} {'query' if sent == 1 else 'queries'} of the period "
+                  f"answered (no rows read)\n")
         out.write(f"history  {job.history.describe()}: tables ready\n")
         for s in job.sinks:
             out.write(f"alert    {s.channel}\n")

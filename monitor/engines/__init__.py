@@ -6,7 +6,7 @@ found by SQLAlchemy dialect name (:func:`get`), and the one factory
 
 from __future__ import annotations
 
-from . import duckdb, generic, mysql, postgresql, sqlite  # noqa: F401 - each registers its engine
+from . import duckdb, generic, mysql, postgresql, spark, sqlite  # noqa: F401 - each registers its engine
 from .base import (
     Engine,
     EngineTraits,

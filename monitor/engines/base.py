@@ -58,6 +58,7 @@ from __future__ import annotations
 import logging
 from dataclasses import dataclass
 from datetime import datetime, timezone
+from decimal import Decimal
 from typing import TYPE_CHECKING, Any, ClassVar, Iterable, Mapping, Sequence
 
 import sqlalchemy as sa
@@ -86,12 +87,24 @@ def redact(url: str) -> str:
         return url
 
 
+#: The longest database error text a message quotes (drivers may send a whole stack).
+ONE_LINE_MAX = 300
+
+
 def one_line(exc: BaseException | None) -> str:
-    """The first line of a database error (the driver's own text when there is one)."""
+    """The first line of a database error (the driver's own text when there is one),
+    at most :data:`ONE_LINE_MAX` characters. A HiveServer2 (Thrift) response, as
+    Spark's server sends, gives its ``errorMessage`` rather than the whole response
+    with the server's Java stack."""
     if exc is None:
         return "unknown error"
-    text = str(getattr(exc, "orig", None) or exc).strip().splitlines()
-    return text[0] if text else type(exc).__name__
+    orig = getattr(exc, "orig", None) or exc
+    args = getattr(orig, "args", ())
+    status = getattr(args[0], "status", None) if args else None
+    message = getattr(status, "errorMessage", None)
+    text = str(message or orig).strip().splitlines()
+    line = text[0].strip() if text else type(exc).__name__
+    return line if len(line) <= ONE_LINE_MAX else line[: ONE_LINE_MAX - 3] + "..."
 
 
 def format_version(version: tuple[int, ...] | None) -> str:
@@ -214,6 +227,9 @@ class Engine:
     minimum: ClassVar[tuple[int, ...] | None] = None
     #: Added to the "too old" message.
     version_note: ClassVar[str] = ""
+    #: Powers of the shifted value an exact metric sums in decimal arithmetic (higher
+    #: ones as doubles: Spark, whose decimals end at 38 digits).
+    exact_powers: ClassVar[int] = 4
 
     def __repr__(self) -> str:
         return f"<engine {self.name}>"
@@ -234,6 +250,17 @@ class Engine:
     def exact_decimal(self, ctype: sa.Numeric) -> bool:
         """Whether sums of this ``NUMERIC`` column stay exact (given :attr:`exact`)."""
         return True
+
+    def decimal_literal(self, value: Decimal) -> sa.ColumnElement:
+        """An exact shift in SQL (a bound ``Decimal`` by default)."""
+        return sa.literal(value, sa.Numeric())
+
+    def first_rows(self, stmt: sa.Select, order_by: Sequence[sa.ColumnElement], limit: int) -> sa.Select:
+        """At most ``limit`` rows of ``stmt``, for the shift probe. By default ``LIMIT``
+        alone: the engine stops early and hands out rows in its scan order. An engine
+        whose scans run in parallel tasks orders by ``order_by`` first (Spark), so
+        that the same rows come every time."""
+        return stmt.limit(limit)
 
     def fence(self, stmt: sa.Select) -> sa.Select:
         """Keep the planner from inlining a subquery's expressions into every use

@@ -256,18 +256,29 @@ def value_or_null(plan: MetricPlan, col: sa.ColumnElement, traits: EngineTraits,
     return sa.case((usable(plan, col, traits), v))
 
 
-def _shift_literal(plan: MetricPlan, shift: Any) -> sa.ColumnElement:
+def _shift_literal(plan: MetricPlan, shift: Any, traits: EngineTraits | None) -> sa.ColumnElement:
     if plan.exact:
+        if traits is not None:  # the engine's decimal literal (Spark: a typed CAST)
+            return traits.engine.decimal_literal(Decimal(shift))
         return sa.literal(Decimal(shift), sa.Numeric())
     return sa.literal(float(shift), sa.Double())
 
 
-def _shift_expr(plan: MetricPlan, shift: Shift, seg: sa.ColumnElement) -> sa.ColumnElement:
+def _shift_expr(plan: MetricPlan, shift: Shift, seg: sa.ColumnElement,
+                traits: EngineTraits | None = None) -> sa.ColumnElement:
     """The shift as SQL: one literal, or ``CASE segment WHEN ... THEN k_g ... END``."""
     if not shift.segments:
-        return _shift_literal(plan, shift.k)
-    return sa.case({raw: _shift_literal(plan, k) for raw, k in shift.segments}, value=seg,
-                   else_=_shift_literal(plan, shift.k))
+        return _shift_literal(plan, shift.k, traits)
+    return sa.case({raw: _shift_literal(plan, k, traits) for raw, k in shift.segments}, value=seg,
+                   else_=_shift_literal(plan, shift.k, traits))
+
+
+def _high_power_base(plan: MetricPlan, d: sa.ColumnElement, traits: EngineTraits | None) -> sa.ColumnElement:
+    """The shifted value whose third and fourth powers are summed: a double where the
+    engine keeps only the lower powers of an exact metric in decimals (Spark)."""
+    if plan.exact and traits is not None and traits.engine.exact_powers < 3:
+        return to_double(d)
+    return d
 
 
 # ------------------------------------------------------------------ queries
@@ -311,7 +322,8 @@ class Shift:
 
 
 def probe_query(rel: sa.FromClause, plans: Sequence[MetricPlan], where: sa.ColumnElement[bool],
-                traits: EngineTraits, limit: int = PROBE_ROWS) -> sa.Select:
+                traits: EngineTraits, limit: int = PROBE_ROWS,
+                order_by: Sequence[sa.ColumnElement] = ()) -> sa.Select:
     """The shift probe: one row with a value near the data for every metric.
 
     Reads at most ``limit`` rows of the window (the database stops there) and returns
@@ -319,9 +331,15 @@ def probe_query(rel: sa.FromClause, plans: Sequence[MetricPlan], where: sa.Colum
     smallest value (exact metrics, so that the shift is a data value and every
     shifted term is exact), and ``r<i>``, their range (float metrics). NULL when none
     of those rows has a usable value; see :func:`first_value_query`.
+
+    Which rows are the first is the engine's choice (:meth:`~monitor.engines.base.Engine.first_rows`):
+    the scan order on single-node engines; on Spark, whose parallel tasks may hand out other
+    rows on every run, the first by ``order_by`` (the time column) and every selected column.
     """
     keys = _distinct([p.key for p in plans])
-    sub = sa.select(*[rel.c[k] for k in keys]).where(where).limit(limit).subquery("segwatch_probe")
+    picked = [rel.c[k] for k in keys]
+    sub = traits.engine.first_rows(sa.select(*picked).where(where), [*order_by, *picked], limit)
+    sub = sub.subquery("segwatch_probe")
     cols = []
     for p in plans:
         v = value_or_null(p, sub.c[p.key], traits)
@@ -334,15 +352,12 @@ def probe_query(rel: sa.FromClause, plans: Sequence[MetricPlan], where: sa.Colum
 
 
 def first_value_query(rel: sa.FromClause, plan: MetricPlan, where: sa.ColumnElement[bool],
-                      traits: EngineTraits) -> sa.Select:
+                      traits: EngineTraits, order_by: Sequence[sa.ColumnElement] = ()) -> sa.Select:
     """The first usable value of one metric in the window (``LIMIT 1``): the fallback
-    shift when the probe's rows held none."""
+    shift when the probe's rows held none (first as in :func:`probe_query`)."""
     col = rel.c[plan.key]
-    return (
-        sa.select(transformed(plan, col).label("k"))
-        .where(where, usable(plan, col, traits))
-        .limit(1)
-    )
+    stmt = sa.select(transformed(plan, col).label("k")).where(where, usable(plan, col, traits))
+    return traits.engine.first_rows(stmt, [*order_by, col], 1)
 
 
 def _fence(stmt: sa.Select, traits: EngineTraits) -> sa.Select:
@@ -421,7 +436,7 @@ def aggregate_query(rel: sa.FromClause, segment_key: str, plans: Sequence[Metric
     for p in plans:
         i = p.position
         shift = shifts[i]
-        d = rows.c[f"v{i}"] - _shift_expr(p, shift, rows.c.seg)
+        d = rows.c[f"v{i}"] - _shift_expr(p, shift, rows.c.seg, traits)
         middle.append(d.label(f"d{i}"))
         if not p.exact:
             scale = sa.literal(shift.scale, sa.Double())
@@ -458,9 +473,10 @@ def aggregate_query(rel: sa.FromClause, segment_key: str, plans: Sequence[Metric
                 sa.func.sum(h * low).label(f"s2m_{i}"),
                 sa.func.sum(low * low).label(f"s2l_{i}"),
             ]
+        e = _high_power_base(p, d, traits)
         cols += [
-            sa.func.sum(d * d * d).label(f"s3_{i}"),
-            sa.func.sum(d * d * d * d).label(f"s4_{i}"),
+            sa.func.sum(e * e * e).label(f"s3_{i}"),
+            sa.func.sum(e * e * e * e).label(f"s4_{i}"),
         ]
     return sa.select(*cols).group_by(c.seg)
 
@@ -476,7 +492,8 @@ def direct_possible(plans: Sequence[MetricPlan], traits: EngineTraits) -> bool:
 
 
 def direct_query(rel: sa.FromClause, segment_key: str, plans: Sequence[MetricPlan],
-                 where: sa.ColumnElement[bool], shifts: Mapping[int, Shift]) -> sa.Select:
+                 where: sa.ColumnElement[bool], shifts: Mapping[int, Shift],
+                 traits: EngineTraits | None = None) -> sa.Select:
     """The aggregate query without per-row tests: the fast form tried first.
 
     One flat ``SELECT ... GROUP BY segment`` over the table with, per metric,
@@ -501,15 +518,16 @@ def direct_query(rel: sa.FromClause, segment_key: str, plans: Sequence[MetricPla
         i = p.position
         col = rel.c[p.key]
         v = raw_value(p, col)
-        d = v - _shift_expr(p, shifts[i], seg)
+        d = v - _shift_expr(p, shifts[i], seg, traits)
+        e = _high_power_base(p, d, traits)
         cols += [
             sa.func.count(col).label(f"nn{i}"),
             sa.func.min(v).label(f"lo{i}"),
             sa.func.max(v).label(f"hi{i}"),
             sa.func.sum(d).label(f"s1_{i}"),
             sa.func.sum(d * d).label(f"s2_{i}"),
-            sa.func.sum(d * d * d).label(f"s3_{i}"),
-            sa.func.sum(d * d * d * d).label(f"s4_{i}"),
+            sa.func.sum(e * e * e).label(f"s3_{i}"),
+            sa.func.sum(e * e * e * e).label(f"s4_{i}"),
         ]
     return sa.select(*cols).where(where).group_by(seg)
 

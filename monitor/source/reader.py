@@ -176,7 +176,49 @@ class Source:
         """Reach the source, check the server version and the columns, and report them."""
         rel = self._relation()
         name, version = self._version or ("unknown", None)
-        return SourceInfo(self.engine.dialect.name, format_version(version), tuple(c.name for c in rel.columns))
+        # the engine's own name (Spark speaks PyHive's "hive" dialect; MariaDB MySQL's)
+        return SourceInfo(name, format_version(version), tuple(c.name for c in rel.columns))
+
+    def check_window(self, period: Period) -> int:
+        """Send the period's queries as a run would build them, for no rows (``LIMIT 0``):
+        the window's bounds bound and compared with the time column, the metrics' casts,
+        transforms and tests, the sampling hash and (``compute: pushdown``) the aggregate
+        sums are all compiled and analysed by the engine, so a broken bind or type shows
+        here, not in the first scheduled run (for ``segwatch check``). Returns the number
+        of queries sent.
+
+        Raises
+        ------
+        SourceError
+            One line naming the period, the URL and the engine's answer.
+        """
+        rel = self._relation()
+        where = self.window_clause(period)
+        seg_key = self.cfg.segment_column
+        traits = EngineTraits.of(self.engine.dialect)
+        plans, reason = ((), "local")
+        if self.job.compute == "pushdown":
+            plans, reason = pushdown.plan_metrics(rel, self.job.metrics, traits)
+        if reason is None:
+            shifts = {p.position: Shift.from_probe(p, None, None) for p in plans}
+            hashed = pushdown.hash_expr(self._sample_key(rel), self.job.sampling.seed, traits)
+            statements = [
+                pushdown.aggregate_query(rel, seg_key, plans, where, shifts, traits).limit(0),
+                pushdown.values_query(rel, seg_key, plans, where, traits, hashed=hashed).limit(0),
+            ]
+        else:
+            cols = [rel.c[seg_key], *[rel.c[m.column] for m in self.job.metrics]]
+            statements = [sa.select(*cols).where(where).limit(0)]
+        try:
+            with self._connect() as conn:
+                for stmt in statements:
+                    conn.execute(stmt).all()
+        except SQLAlchemyError as exc:
+            raise SourceError(
+                f"{self.job.path}: a window query for period {period.ident} on {redact(self.cfg.url)} "
+                f"failed: {one_line(exc)}"
+            ) from exc
+        return len(statements)
 
     # -------------------------------------------------------------- data
 
@@ -296,7 +338,7 @@ class Source:
         if direct is None:
             direct = self.direct and pushdown.direct_possible(plans, traits)
         if direct:
-            stmt = pushdown.direct_query(rel, seg_key, plans, where, shifts)
+            stmt = pushdown.direct_query(rel, seg_key, plans, where, shifts, traits)
             rows = conn.execute(stmt).mappings().all()
             if pushdown.direct_clean(rows, plans):
                 return pushdown.read_aggregate(rows, plans, shifts, traits, direct=True), True
@@ -307,13 +349,14 @@ class Source:
     def _shifts(self, conn: sa.Connection, rel: sa.FromClause, plans: Sequence[MetricPlan],
                 where: sa.ColumnElement[bool], traits: EngineTraits) -> dict[int, Shift]:
         """One shift per metric: the probe, then the first usable value where the probe found none."""
-        row = conn.execute(pushdown.probe_query(rel, plans, where, traits)).mappings().one()
+        order = [rel.c[self.cfg.time_column]]
+        row = conn.execute(pushdown.probe_query(rel, plans, where, traits, order_by=order)).mappings().one()
         shifts: dict[int, Shift] = {}
         for p in plans:
             k = row[f"k{p.position}"]
             spread = None if p.exact else row[f"r{p.position}"]
             if k is None:
-                k = conn.execute(pushdown.first_value_query(rel, p, where, traits)).scalar()
+                k = conn.execute(pushdown.first_value_query(rel, p, where, traits, order)).scalar()
             shifts[p.position] = Shift.from_probe(p, k, spread)
         return shifts
 
