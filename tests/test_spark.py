@@ -522,3 +522,133 @@ def _master_state(folder: Path) -> dict:
     port = (folder / "master.webui").read_text().strip()
     with urllib.request.urlopen(f"http://127.0.0.1:{port}/json/", timeout=30) as resp:
         return json.load(resp)
+
+
+def test_check_finds_a_window_query_that_cannot_run(spark_db, tables, tmp_path, capsys, monkeypatch):
+    """With PyHive's own reflection (TIMESTAMP as a TypeDecorator whose binds raise), the
+    first run would fail; check must say so, in one line, instead of 'ok'."""
+    from monitor.engines import base, spark
+
+    monkeypatch.setattr(spark.SparkEngine, "reflect_table", base.Engine.reflect_table)
+    monkeypatch.setattr(spark.SparkEngine, "time_window", base.Engine.time_window)
+    monkeypatch.setattr(spark.SparkEngine, "column_type", base.Engine.column_type)
+    path = _write(tmp_path, _config_dict(spark_db.url, tables[0], tmp_path))
+    assert main(["check", str(path)]) == 1
+    captured = capsys.readouterr()
+    assert "ok" not in captured.out.split()
+    err = captured.err.strip()
+    assert len(err.splitlines()) == 1 and "window query" in err and "2026-W" in err, err
+
+
+# ---------------------------------------------------------------- the SQL itself (no server)
+
+
+def _hive_dialect():
+    pytest.importorskip("pyhive", reason="pyhive is not installed")
+    from pyhive.sqlalchemy_hive import HiveDialect
+
+    return HiveDialect()
+
+
+def test_only_spark_orders_the_probe_and_every_selected_column_is_in_the_order():
+    """The probe's LIMIT picks the same rows on every run on Spark (ORDER BY the time column,
+    then every selected column, so tied rows are equal rows); the single-node engines keep
+    their early-stopping LIMIT alone (results there unchanged)."""
+    from sqlalchemy.dialects import postgresql, sqlite
+
+    from monitor.config import MetricConfig
+    from monitor.engines import EngineTraits
+    from monitor.source import pushdown
+
+    t = sa.Table("parcels", sa.MetaData(), sa.Column("ts", sa.DateTime(timezone=True)), sa.Column("seg", sa.String),
+                 sa.Column("x", sa.Double), sa.Column("amount", sa.Numeric(15, 6)))
+    metrics = [MetricConfig(column="x", name="x"), MetricConfig(column="amount", name="amount")]
+    for dialect, ordered in ((_hive_dialect(), True), (postgresql.dialect(), False), (sqlite.dialect(), False)):
+        traits = EngineTraits.of(dialect)
+        plans, reason = pushdown.plan_metrics(t, metrics, traits)
+        assert reason is None
+        where = t.c.ts >= sa.literal("2026-03-02")
+        probe = pushdown.probe_query(t, plans, where, traits, order_by=[t.c.ts])
+        first = pushdown.first_value_query(t, plans[0], where, traits, [t.c.ts])
+        sql = [" ".join(str(q.compile(dialect=dialect, compile_kwargs={"literal_binds": True})).split())
+               for q in (probe, first)]
+        if ordered:
+            assert "ORDER BY `parcels`.`ts`, `parcels`.`x`, `parcels`.`amount` LIMIT 1000" in sql[0], sql[0]
+            assert "ORDER BY `parcels`.`ts`, `parcels`.`x` LIMIT 1" in sql[1], sql[1]
+        else:
+            assert "ORDER BY" not in sql[0] and "ORDER BY" not in sql[1]
+        if dialect.name == "hive":  # exact amount: a typed decimal shift, S3/S4 as doubles
+            assert traits.exact and plans[1].exact
+            shifts = {p.position: pushdown.Shift.from_probe(p, Decimal("368.735685") if p.exact else 10.5, 4.0)
+                      for p in plans}
+            agg = " ".join(str(pushdown.aggregate_query(t, "seg", plans, where, shifts, traits).compile(
+                dialect=dialect, compile_kwargs={"literal_binds": True})).split())
+            assert "CAST('368.735685' AS DECIMAL(9,6))" in agg, agg
+            assert "sum(CAST(`segwatch_shifted`.`d1` AS DOUBLE) * CAST(" in agg, agg
+
+
+def test_spark_types_and_decimal_limits():
+    from monitor.engines import get
+    from monitor.engines.spark import NaiveDateTime, spark_type
+
+    assert isinstance(spark_type("timestamp"), sa.DateTime) and spark_type("timestamp").timezone
+    assert isinstance(spark_type("timestamp_ntz"), NaiveDateTime) and not spark_type("timestamp_ntz").timezone
+    dec = spark_type("decimal(15,6)")
+    assert (dec.precision, dec.scale) == (15, 6)
+    assert isinstance(spark_type("date"), sa.Date) and not isinstance(spark_type("date"), sa.DateTime)
+    assert isinstance(spark_type("array<int>"), sa.types.NullType)
+    engine = get("hive")
+    assert engine.name == "spark"
+    # 17 digits: the shifted value (18) squared is 37 digits, inside Spark's 38
+    assert engine.exact_decimal(sa.Numeric(17, 6)) and not engine.exact_decimal(sa.Numeric(18, 6))
+
+
+# ---------------------------------------------------------------- NIST StRD
+
+NIST_DIR = ROOT / "tests" / "reference" / "nist_strd_anova"
+
+
+def _lre(computed: float, certified: float) -> float:
+    """Log relative error, capped at 15 (NIST StRD scoring)."""
+    if computed == certified:
+        return 15.0
+    return min(15.0, max(0.0, -math.log10(abs(computed - certified) / abs(certified))))
+
+
+@pytest.mark.parametrize("name", ["AtmWtAg", "SmLs03", "SmLs09"])
+def test_nist_strd_certified_f_through_spark_decimals(spark_db, tmp_path, name):
+    """NIST StRD one-way ANOVA data stored as DECIMAL: the pushed-down exact sums give the
+    certified F statistic (certified.json) to at least 12 digits."""
+    import csv
+
+    from monitor.stats.omnibus import fisher_anova
+
+    certified = json.loads((NIST_DIR / "certified.json").read_text(encoding="utf-8"))["datasets"][name]
+    with open(NIST_DIR / f"{name}.csv", newline="", encoding="utf-8") as fh:
+        data = [(int(r["treatment"]), r["response"]) for r in csv.DictReader(fh)]
+    scale = max(len(v.partition(".")[2]) for _, v in data)
+    digits = max(len(v.partition(".")[0].lstrip("-")) for _, v in data) + scale
+    table = f"nist_{name.lower()}_{uuid.uuid4().hex[:6]}"
+    statements = [f"CREATE TABLE {spark_db.name}.{table} (ts TIMESTAMP, treatment INT, response "
+                  f"DECIMAL({digits},{scale})) USING parquet"]
+    for start in range(0, len(data), 6000):
+        values = ", ".join(f"(TIMESTAMP '2026-03-03 12:00:00', {t}, {v})" for t, v in data[start:start + 6000])
+        statements.append(f"INSERT INTO {spark_db.name}.{table} VALUES {values}")
+    spark_db.run(*statements)
+    cfg = parse_config({
+        "job": "nist", "period": "week", "timezone": "UTC",
+        "source": {"url": spark_db.url, "table": table, "time_column": "ts", "segment_column": "treatment"},
+        "metrics": [{"column": "response", "test": "anova"}],
+        "sampling": {"mode": "sample", "cap": 50},
+        "history": {"url": f"sqlite:///{tmp_path / 'h.sqlite'}"},
+    }, tmp_path / "nist.yaml", environ={})
+    src = Source(cfg)
+    try:
+        data_ = src.fetch(parse_period("week", "2026-W10", "UTC"))
+    finally:
+        src.dispose()
+    (metric,) = data_.metrics
+    assert sum(s.moments.n for s in metric.segments) == len(data)
+    assert all(s.moments.is_exact for s in metric.segments)
+    f = fisher_anova([s.moments for s in metric.segments]).statistic
+    assert _lre(f, certified["f_statistic"]) >= 12.0, (name, f, certified["f_statistic"])
