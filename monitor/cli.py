@@ -19,6 +19,7 @@ from typing import TYPE_CHECKING, Any, Sequence, TextIO
 
 from . import __version__, methods
 from .errors import EXIT_BUSY, EXIT_FAILED, SegwatchError, UsageError
+from .redact import redact
 
 if TYPE_CHECKING:  # the command line imports the heavy modules only when a command needs them
     from .runner import PeriodReport
@@ -185,6 +186,7 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 def _say_error(args: argparse.Namespace, message: str, code: int) -> None:
     """The one stderr line of a failure: ``Error: ...`` as text, or a JSON Lines record."""
+    message = redact(message)
     if args.log_format == "json":
         log.error("%s", message, extra={"exit_code": code})
     else:
@@ -204,7 +206,7 @@ def _dispatch(args: argparse.Namespace, out: _Stdout) -> int:
             if args.log_format == "json":
                 log.warning("%s", exc, extra={"exit_code": exc.exit_code})
             else:
-                print(f"Skipped: {exc}", file=sys.stderr)
+                print(redact(f"Skipped: {exc}"), file=sys.stderr)
             return exc.exit_code
         if args.debug:
             traceback.print_exc()
@@ -295,15 +297,15 @@ def cmd_check(args: argparse.Namespace, out: TextIO) -> int:
               f"zone {cfg.timezone}\n")
     with _job(cfg) as job:
         info = job.source.describe()
-        out.write(f"source   {info.dialect} {info.server_version}: {len(info.columns)} columns, "
-                  f"all configured columns present\n")
+        out.write(redact(f"source   {info.dialect} {info.server_version}: {len(info.columns)} columns, "
+                         f"all configured columns present\n"))
         period = job.period()
         sent = job.source.check_window(period)
         out.write(f"window   {period.ident}: {sent} {'query' if sent == 1 else 'queries'} of the period "
                   f"answered (no rows read)\n")
-        out.write(f"history  {job.history.describe()}: tables ready\n")
+        out.write(redact(f"history  {job.history.describe()}: tables ready\n"))
         for s in job.sinks:
-            out.write(f"alert    {s.channel}\n")
+            out.write(f"alert    {redact(s.channel)}\n")
     out.write("ok\n")
     return 0
 
@@ -340,8 +342,6 @@ def cmd_serve(args: argparse.Namespace, out: TextIO) -> int:
 
 
 def cmd_alerts(args: argparse.Namespace, out: TextIO) -> int:
-    from .alerts import channel_display
-
     cfg = _load(args.config)
     with _job(cfg) as job:
         outcome = None
@@ -357,7 +357,7 @@ def cmd_alerts(args: argparse.Namespace, out: TextIO) -> int:
         if outcome is not None:
             doc["retry"] = {"sent": outcome.sent, "retrying": outcome.retrying, "dead": outcome.dead,
                             "busy": outcome.busy}
-        json.dump(doc, out, indent=2)
+        out.write(redact(json.dumps(doc, indent=2)))
         out.write("\n")
         return 1 if undelivered else 0
     if outcome is not None:
@@ -372,15 +372,15 @@ def cmd_alerts(args: argparse.Namespace, out: TextIO) -> int:
         out.write(f"{cfg.job}: {counts['pending']} pending, {counts['dead']} dead\n\n")
         out.write(_table(
             ["status", "channel", "period", "kind", "metric", "segment", "attempts", "next try", "last error"],
-            [[r.status, channel_display(r.channel), r.period or "-", r.kind, r.metric or "-", r.segment or "-",
+            [[r.status, redact(r.channel), r.period or "-", r.kind, r.metric or "-", r.segment or "-",
               str(r.attempts),
               "-" if r.status == "dead" else (r.next_attempt_at.strftime("%Y-%m-%d %H:%M:%SZ")
                                               if r.next_attempt_at else "now"),
-              r.last_error or "-"] for r in rows]))
+              redact(r.last_error) or "-"] for r in rows]))
     if periods:
         out.write("\nperiods not done:\n")
         out.write(_table(["period", "state", "attempts", "last error"],
-                         [[e.period, e.state, str(e.attempts), e.last_error or "-"] for e in periods]))
+                         [[e.period, e.state, str(e.attempts), redact(e.last_error) or "-"] for e in periods]))
     return 1 if undelivered else 0
 
 

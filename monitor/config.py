@@ -40,25 +40,22 @@ from collections.abc import Mapping
 from dataclasses import dataclass, fields, replace
 from datetime import date
 from pathlib import Path
-from typing import Any, Callable, ClassVar, NoReturn, Union
-from urllib.parse import quote, unquote, urlsplit
+from typing import Any, Callable, NoReturn
+from urllib.parse import quote, unquote
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError, available_timezones
 
 import yaml
 
 from monitor import methods
+from monitor.delivery.sinks import base as sink_types
 from monitor.errors import ConfigError
+from monitor.redact import redact
 
 __all__ = [
     "SourceConfig",
     "MetricConfig",
     "FdrConfig",
     "HistoryConfig",
-    "SmtpConfig",
-    "LogAlert",
-    "EmailAlert",
-    "WebhookAlert",
-    "CommandAlert",
     "AlertConfig",
     "QualityConfig",
     "PosthocConfig",
@@ -192,75 +189,9 @@ class HistoryConfig:
         return _repr_with(self, url=self.display_url)
 
 
-@dataclass(frozen=True, repr=False)
-class SmtpConfig:
-    """How to reach the mail server. ``ssl`` is implicit TLS; ``starttls`` upgrades a plain connection.
-
-    When the file sets ``ssl: true`` and no ``port``, the port is 465 (RFC 8314), else 25.
-    A blank ``username`` or ``password`` (an empty variable, say) reads as None: no login.
-    """
-
-    host: str
-    port: int = 25
-    starttls: bool = False
-    ssl: bool = False
-    username: str | None = None
-    password: str | None = None
-    timeout: float = 30.0
-
-    def __repr__(self) -> str:
-        return _repr_with(self, password=_HIDDEN if self.password else None)
-
-
-@dataclass(frozen=True)
-class LogAlert:
-    """Append events as JSON Lines to ``path`` (absolute)."""
-
-    type: ClassVar[str] = "log"
-    path: Path
-
-
-@dataclass(frozen=True)
-class EmailAlert:
-    """Mail the events; ``sender`` is the YAML key ``from``."""
-
-    type: ClassVar[str] = "email"
-    to: tuple[str, ...]
-    sender: str
-    smtp: SmtpConfig
-    subject_prefix: str = "[segwatch]"
-
-
-@dataclass(frozen=True, repr=False)
-class WebhookAlert:
-    """POST the events as JSON to ``url``. ``headers`` is a tuple of (name, value) pairs."""
-
-    type: ClassVar[str] = "webhook"
-    url: str
-    timeout: float = 10.0
-    headers: tuple[tuple[str, str], ...] = ()
-
-    @property
-    def header_dict(self) -> dict[str, str]:
-        return dict(self.headers)
-
-    def __repr__(self) -> str:
-        # the path of a webhook URL is often its secret
-        origin = urlsplit(self.url)
-        return _repr_with(self, url=f"{origin.scheme}://{origin.netloc}/...",
-                          headers=tuple((name, _HIDDEN) for name, _ in self.headers))
-
-
-@dataclass(frozen=True)
-class CommandAlert:
-    """Run ``run`` (no shell) with the events as JSON on stdin."""
-
-    type: ClassVar[str] = "command"
-    run: tuple[str, ...]
-    timeout: float = 60.0
-
-
-AlertConfig = Union[LogAlert, EmailAlert, WebhookAlert, CommandAlert]
+#: One configured alert: the frozen config object of its channel type (see
+#: :mod:`monitor.delivery.sinks`; ``type`` names the type, ``kinds`` the event kinds it receives).
+AlertConfig = Any
 
 
 @dataclass(frozen=True)
@@ -338,8 +269,8 @@ def config_hash(cfg: JobConfig) -> str:
 
 
 def display_url(url: str) -> str:
-    """``url`` with a password, if any, replaced by ``***``."""
-    return _CREDENTIALS.sub(r"\1***@", url)
+    """``url`` with its secrets (password, secret parameters, token-like path segments) as ``***``."""
+    return redact(url)
 
 
 def _repr_with(obj: Any, **shown: Any) -> str:
@@ -421,20 +352,11 @@ _TOP_KEYS = ("job", "source", "period", "timezone", "metrics", "fdr", "history",
              "scheduling", "report")
 _SOURCE_KEYS = ("url", "table", "query", "time_column", "segment_column", "naive_time")
 _METRIC_KEYS = ("column", "name", "test", "reference", "transform", "unit", "decimals", "min_effect", "label")
-_ALERT_KEYS = {
-    "log": ("type", "path"),
-    "email": ("type", "to", "from", "smtp", "subject_prefix"),
-    "webhook": ("type", "url", "timeout", "headers"),
-    "command": ("type", "run", "timeout"),
-}
-_SMTP_KEYS = ("host", "port", "starttls", "ssl", "username", "password", "timeout")
 
 _MISSING: Any = type("_Missing", (), {"__repr__": lambda self: "nothing"})()
 _REQUIRED: Any = type("_Required", (), {})()
 _HIDDEN = "<hidden>"
-_CREDENTIALS = re.compile(r"(://[^/:@\s]*:)[^@/\s]*@")
 _PLACEHOLDER = re.compile(r"\$\$\{|\$\{([A-Za-z_][A-Za-z0-9_]*)\}|\$\{")
-_HEADER_NAME = re.compile(r"[!#$%&'*+.^_`|~0-9A-Za-z-]+")
 _BOOL_WORDS = {"true": True, "yes": True, "on": True, "false": False, "no": False, "off": False}
 _ENV_HINT = "variables that are set in the environment, as ${NAME}; $${ for a literal ${"
 
@@ -649,7 +571,9 @@ def _metrics(r: _Reader, top: dict, source: SourceConfig) -> tuple[MetricConfig,
 
 
 def _alerts(r: _Reader, top: dict) -> tuple[AlertConfig, ...]:
-    kinds = ", ".join(_ALERT_KEYS)
+    """Each ``alerts[i]`` read by its channel type (:mod:`monitor.delivery.sinks`)."""
+    known = sink_types.types()
+    kinds = ", ".join(known)
     items = r.listing(top, "alerts", "", f"a list of alerts, each a mapping with type: {kinds}",
                       default=[], allow_empty=True)
     alerts: list[AlertConfig] = []
@@ -657,90 +581,11 @@ def _alerts(r: _Reader, top: dict) -> tuple[AlertConfig, ...]:
         path = f"alerts[{index}]"
         if not isinstance(item, Mapping):
             r.mapping(item, path, None, f"a mapping with type: {kinds}")
-        kind = r.choice(item, "type", path, tuple(_ALERT_KEYS), "alert type")
-        spec = r.mapping(item, path, _ALERT_KEYS[kind], f"a mapping with keys {', '.join(_ALERT_KEYS[kind])}")
-        alerts.append(_ALERT_READERS[kind](r, spec, path))
+        kind = r.choice(item, "type", path, known, "alert type")
+        sink_type = sink_types.get(kind)
+        spec = r.mapping(item, path, sink_type.keys, f"a mapping with keys {', '.join(sink_type.keys)}")
+        alerts.append(sink_type.parse(r, spec, path))
     return tuple(alerts)
-
-
-def _log_alert(r: _Reader, spec: dict, path: str) -> LogAlert:
-    return LogAlert(path=r.folder_path(r.text(spec, "path", path, "a file path for the JSON Lines log")))
-
-
-def _email_alert(r: _Reader, spec: dict, path: str) -> EmailAlert:
-    def address(value: str) -> bool:
-        return "@" in value and not any(ch.isspace() for ch in value)
-
-    to = r.strings(spec, "to", path, "a list of e-mail addresses like [ops@example.com]", check=address,
-                   bad="is not an e-mail address")
-    sender = r.text(spec, "from", path, "an e-mail address like segwatch@example.com")
-    if not address(sender):
-        r.fail(f"{path}.from", "is not an e-mail address", sender, "an e-mail address like segwatch@example.com")
-    where = f"{path}.smtp"
-    smtp = r.section(spec, "smtp", path, _SMTP_KEYS, required=True)
-    starttls = r.boolean(smtp, "starttls", where, default=False)
-    ssl = r.boolean(smtp, "ssl", where, default=False)
-    if starttls and ssl:
-        r.fail(f"{where}.ssl", "cannot be combined with starttls: true", True,
-               "ssl (implicit TLS, port 465) or starttls (port 587), not both")
-    return EmailAlert(
-        to=to,
-        sender=sender,
-        smtp=SmtpConfig(
-            host=r.text(smtp, "host", where, "a mail server host name"),
-            port=r.integer(smtp, "port", where, lambda x: 1 <= x <= 65535, "a port number from 1 to 65535",
-                           default=465 if ssl else 25),
-            starttls=starttls,
-            ssl=ssl,
-            username=r.text(smtp, "username", where, "a login name", default=None, blank_is_none=True),
-            password=r.text(smtp, "password", where, "a password, best as ${VARIABLE}", default=None,
-                            blank_is_none=True, secret=True),
-            timeout=r.number(smtp, "timeout", where, _positive, "seconds, more than 0", default=30.0),
-        ),
-        subject_prefix=r.text(spec, "subject_prefix", path, "a subject prefix", default="[segwatch]",
-                              blank_is_none=False, allow_blank=True),
-    )
-
-
-def _webhook_alert(r: _Reader, spec: dict, path: str) -> WebhookAlert:
-    accepted = "an http:// or https:// URL"
-    url = r.text(spec, "url", path, accepted)
-    parts = urlsplit(url)
-    if parts.scheme.lower() not in ("http", "https") or not parts.netloc:
-        r.fail(f"{path}.url", "is not an http(s) URL", url, accepted)
-    header_accepted = "a mapping of HTTP header names to text values"
-    headers = r.section(spec, "headers", path, None, accepted=header_accepted)
-    pairs = []
-    for name in headers:
-        if not isinstance(name, str) or not _HEADER_NAME.fullmatch(name):
-            r.fail(f"{path}.headers", "has a key that is not an HTTP header name", name,
-                   "letters, digits and - like X-Api-Key")
-        value = r.text(headers, name, f"{path}.headers", "header text", secret=True, allow_blank=True)
-        if "\r" in value or "\n" in value:
-            r.fail(f"{path}.headers.{name}", "contains a line break", value, "header text on one line", secret=True)
-        pairs.append((name, value))
-    return WebhookAlert(
-        url=url,
-        timeout=r.number(spec, "timeout", path, _positive, "seconds, more than 0", default=10.0),
-        headers=tuple(pairs),
-    )
-
-
-def _command_alert(r: _Reader, spec: dict, path: str) -> CommandAlert:
-    run = r.strings(spec, "run", path, 'a list: the program, then its arguments, like ["notify-ops", "--stdin"]')
-    program = run[0]
-    if "/" in program or os.sep in program:  # a path, not a name looked up on PATH
-        run = (str(r.folder_path(program)),) + run[1:]
-    return CommandAlert(run=run, timeout=r.number(spec, "timeout", path, _positive, "seconds, more than 0",
-                                                  default=60.0))
-
-
-_ALERT_READERS: dict[str, Callable[[_Reader, dict, str], AlertConfig]] = {
-    "log": _log_alert,
-    "email": _email_alert,
-    "webhook": _webhook_alert,
-    "command": _command_alert,
-}
 
 
 def _positive(x: float) -> bool:

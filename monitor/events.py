@@ -68,22 +68,14 @@ from typing import Any, Mapping, Protocol, Sequence
 
 from . import methods
 from .config import JobConfig
-from .model import Event, MetricResult  # noqa: F401 - Event re-exported for callers of this module
+from .model import EVENT_KINDS, Event, MetricResult  # noqa: F401 - Event re-exported for callers of this module
 
 log = logging.getLogger(__name__)
 
 #: Stored periods replayed per unit of ``confirm`` (see :func:`lookback`).
 LOOKBACK_PER_CONFIRM = 26
 
-KINDS = (
-    "emerged",
-    "cleared",
-    "assumption_broken",
-    "assumption_restored",
-    "segment_new",
-    "segment_missing",
-    "data_quality",
-)
+KINDS = EVENT_KINDS
 
 CHECK_NAMES = {
     "brown_forsythe": "equal-spread check (Brown-Forsythe)",

@@ -43,6 +43,18 @@ if TYPE_CHECKING:  # type names only: these modules sit above this one
 #: The newest format of stored JSON this release writes and reads.
 FORMAT = 1
 
+#: The event kinds of the contract (CONTRACT.md, "Event kinds"); operational events
+#: (``op_...``) are apart from these.
+EVENT_KINDS = (
+    "emerged",
+    "cleared",
+    "assumption_broken",
+    "assumption_restored",
+    "segment_new",
+    "segment_missing",
+    "data_quality",
+)
+
 #: Per-segment quantiles kept for box plots: 5%, 25%, median, 75%, 95% (whiskers at 5% and 95%).
 QUANTILE_LEVELS = (0.05, 0.25, 0.50, 0.75, 0.95)
 QUANTILE_KEYS = ("q05", "q25", "q50", "q75", "q95")

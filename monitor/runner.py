@@ -28,7 +28,7 @@ from dataclasses import dataclass
 from datetime import timedelta
 from typing import Any, Callable, Iterable
 
-from .alerts import RELAY_WAIT_SECONDS, RelayOutcome, build_sinks, op_channels, relay
+from .delivery.relay import RELAY_WAIT_SECONDS, RelayOutcome, build_sinks, channel_kinds, op_channels, relay
 from .analysis import analyse_period, load_statistics_in_background
 from .clock import Clock, SystemClock
 from .config import JobConfig, config_hash
@@ -189,7 +189,7 @@ class Job:
         baseline = Baseline.from_history(self.history.recent(period, lookback(cfg.confirm)), cfg)
         events = derive_events(cfg, results, data.segments, data.null_segment_rows, data.rows, baseline)
         fresh = self.history.store_period(
-            period, results, events, [s.channel for s in self.sinks],
+            period, results, events, channel_kinds(self.sinks),
             computed_at=self.clock.now(), fingerprint=config_hash(cfg),
             rows=data.rows, null_segment_rows=data.null_segment_rows, segments=data.segments,
             lease_owner=claim.owner,

@@ -68,7 +68,7 @@ from apscheduler.schedulers.background import BackgroundScheduler
 from apscheduler.triggers.cron import CronTrigger
 from apscheduler.triggers.interval import IntervalTrigger
 
-from .alerts import RelayOutcome
+from .delivery.relay import RelayOutcome
 from .clock import Clock, SystemClock
 from .config import JobConfig
 from .errors import PeriodBusy, PeriodError, UsageError

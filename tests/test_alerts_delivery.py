@@ -26,11 +26,14 @@ import pytest
 
 aiosmtpd = pytest.importorskip("aiosmtpd.controller", reason="SMTP tests need aiosmtpd (the `test` extra)")
 
-from monitor import alerts  # noqa: E402
-from monitor.alerts import CommandSink, EmailSink, LogSink, WebhookSink, backoff, relay  # noqa: E402
+from monitor.delivery import relay as alerts  # noqa: E402
+from monitor.delivery.relay import backoff, relay  # noqa: E402
+from monitor.delivery.sinks.command import CommandSink  # noqa: E402
+from monitor.delivery.sinks.email import EmailAlert, EmailSink, SmtpConfig  # noqa: E402
+from monitor.delivery.sinks.log import LogSink  # noqa: E402
+from monitor.delivery.sinks.webhook import WebhookSink  # noqa: E402
 from monitor.cli import main  # noqa: E402
 from monitor.clock import FixedClock  # noqa: E402
-from monitor.config import EmailAlert, SmtpConfig  # noqa: E402
 from monitor.model import Event  # noqa: E402
 from monitor.store.history import History  # noqa: E402
 from monitor.store.ledger import RELAY_RESOURCE, Ledger  # noqa: E402
@@ -313,8 +316,8 @@ def test_webhook_unreachable_and_dropped_are_temporary(history, hook):
     out = relay(history, sinks, FixedClock(T0))
     assert (out.retrying, out.dead) == (4, 0)
     errors = {r.channel: r.last_error for r in history.alerts()}
-    assert "unreachable" in errors[f"webhook:{closed}"]
-    assert "failed: RemoteDisconnected" in errors[f"webhook:{hook.url}"]
+    assert "unreachable" in errors[sinks[0].channel]
+    assert "failed: RemoteDisconnected" in errors[sinks[1].channel]
 
 
 def test_later_periods_wait_for_an_earlier_one(history, hook):

@@ -15,22 +15,21 @@ import yaml
 from apscheduler.triggers.cron import CronTrigger
 
 from monitor.config import (
-    CommandAlert,
-    EmailAlert,
     FdrConfig,
     HistoryConfig,
     JobConfig,
-    LogAlert,
     MetricConfig,
     PosthocConfig,
     QualityConfig,
-    SmtpConfig,
     SourceConfig,
-    WebhookAlert,
     config_hash,
     load_config,
     parse_config,
 )
+from monitor.delivery.sinks.command import CommandAlert
+from monitor.delivery.sinks.email import EmailAlert, SmtpConfig
+from monitor.delivery.sinks.log import LogAlert
+from monitor.delivery.sinks.webhook import WebhookAlert
 from monitor.errors import ConfigError
 
 # The example of CONTRACT.md "Config file", verbatim.
@@ -540,7 +539,7 @@ def test_choices_ignore_case(tmp_path):
             id="log-no-path"),
         pytest.param(
             {"type": "log", "path": "a.jsonl", "to": ["x@y"]},
-            "alerts[0].to: unknown key (given: 'to'; accepted: type, path)",
+            "alerts[0].to: unknown key (given: 'to'; accepted: type, path, kinds)",
             id="log-foreign-key"),
         pytest.param(
             dict(ALERTS["email"], to="ops@example.com"),

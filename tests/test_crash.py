@@ -30,7 +30,8 @@ import numpy as np
 import pytest
 import sqlalchemy as sa
 
-from monitor import alerts, runner, source
+from monitor import runner, source
+from monitor.delivery.sinks import log as alerts
 from monitor.store import history
 from monitor.cli import main
 

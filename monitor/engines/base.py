@@ -67,6 +67,7 @@ from sqlalchemy.ext.compiler import compiles
 from sqlalchemy.sql.functions import FunctionElement
 
 from ..errors import HistoryError, SourceError
+from ..redact import one_line, redact  # noqa: F401 - the one rule (monitor.redact), re-exported
 
 if TYPE_CHECKING:
     import numpy as np
@@ -77,34 +78,6 @@ log = logging.getLogger(__name__)
 
 #: What an engine is opened for: reading the job's source, or writing segwatch's history.
 ROLES = ("source", "history")
-
-
-def redact(url: str) -> str:
-    """The URL with any password hidden, for messages and logs."""
-    try:
-        return sa.engine.make_url(url).render_as_string(hide_password=True)
-    except Exception:  # noqa: BLE001 - a malformed URL is shown as given
-        return url
-
-
-#: The longest database error text a message quotes (drivers may send a whole stack).
-ONE_LINE_MAX = 300
-
-
-def one_line(exc: BaseException | None) -> str:
-    """The first line of a database error (the driver's own text when there is one),
-    at most :data:`ONE_LINE_MAX` characters. A HiveServer2 (Thrift) response, as
-    Spark's server sends, gives its ``errorMessage`` rather than the whole response
-    with the server's Java stack."""
-    if exc is None:
-        return "unknown error"
-    orig = getattr(exc, "orig", None) or exc
-    args = getattr(orig, "args", ())
-    status = getattr(args[0], "status", None) if args else None
-    message = getattr(status, "errorMessage", None)
-    text = str(message or orig).strip().splitlines()
-    line = text[0].strip() if text else type(exc).__name__
-    return line if len(line) <= ONE_LINE_MAX else line[: ONE_LINE_MAX - 3] + "..."
 
 
 def format_version(version: tuple[int, ...] | None) -> str:

@@ -58,7 +58,7 @@ from .. import __version__, methods
 from . import plots
 from ..model import QUANTILE_KEYS
 from ..config import JobConfig, MetricConfig
-from ..engines import redact
+from ..redact import redact
 from ..errors import SegwatchError, UsageError
 from ..events import CHECK_NAMES
 from ..periods import Period, parse_period

@@ -56,10 +56,9 @@ from ..engines import (
     check_server_version,
     format_version,
     hash_array,
-    one_line,
-    redact,
 )
 from ..errors import ConfigError, SourceError
+from ..redact import one_line, redact
 from ..model import MetricInput, QualityCounts, SegmentInput
 from ..periods import Period
 from ..stats.summary import Moments

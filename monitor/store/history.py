@@ -45,7 +45,8 @@ import sqlalchemy as sa
 from sqlalchemy.engine import Engine
 from sqlalchemy.exc import SQLAlchemyError
 
-from ..engines import create_engine, one_line, redact
+from ..engines import create_engine
+from ..redact import one_line, redact
 from ..engines import get as engine_for
 from ..errors import HistoryError, LeaseLost
 from ..model import Event, MetricResult
@@ -396,7 +397,8 @@ class History:
             ) from exc
 
     def _reconcile_events(self, conn, period: Period, events: Sequence[Event],
-                          channels: Sequence[str], now: datetime) -> list[Event]:
+                          channels: Sequence[str] | Mapping[str, frozenset[str] | None],
+                          now: datetime) -> list[Event]:
         existing = {
             row.event_key
             for row in conn.execute(
@@ -434,7 +436,8 @@ class History:
             rows = [
                 {"event_key": k, "channel": ch, "job": self.job,
                  "status": "pending", "attempts": 0, "updated_at": now, "next_attempt_at": None}
-                for k in fresh_keys for ch in channels if (k, ch) not in sent_before
+                for k, e in zip(fresh_keys, fresh) for ch in channels
+                if (k, ch) not in sent_before and _receives(channels, ch, e.kind)
             ]
             if rows:
                 conn.execute(sa.insert(outbox), rows)
@@ -672,3 +675,10 @@ def _insert_rows(conn: sa.Connection, table: sa.Table, columns: Sequence[str],
         bind_keys = [escaped.get(name, name) for name in names]
         params = [dict(zip(bind_keys, row)) for row in rows]
     conn.exec_driver_sql(compiled.string, params)
+
+
+def _receives(channels: Sequence[str] | Mapping[str, frozenset[str] | None], channel: str, kind: str) -> bool:
+    """Whether ``channel`` takes events of ``kind``: ``channels`` may map each channel to its
+    kinds (None: all), as the runner passes them from the alerts' ``kinds:``."""
+    kinds = channels.get(channel) if isinstance(channels, Mapping) else None
+    return kinds is None or kind in kinds

@@ -48,7 +48,7 @@ import sqlalchemy as sa
 from sqlalchemy.exc import SQLAlchemyError
 
 from ..clock import Clock
-from ..engines import one_line, redact
+from ..redact import one_line, redact
 from ..errors import HistoryError, LeaseLost, PeriodBusy
 from ..model import Event
 from .history import History, _utc_naive, insert_missing, insert_op, iso_utc, leases_t, ledger_t, utc_aware
@@ -303,7 +303,8 @@ class Ledger:
 
     def fail(self, claim: Claim, error: str) -> LedgerEntry | None:
         """Record a failed attempt: ledger ``failed`` with the reason and the next retry time,
-        lease released, and ``op_run_failed`` stored — in one transaction."""
+        lease released, and ``op_run_failed`` stored — in one transaction (``error`` redacted)."""
+        error = redact(error)
         now = self.clock.now()
         naive = _utc_naive(now)
         with self._write(f"record the failure of period {claim.resource}") as conn:
