@@ -35,7 +35,7 @@ __all__ = ["MASK", "redact", "redact_argv", "one_line", "is_secret_name"]
 MASK = "***"
 
 _URL = re.compile(r"[A-Za-z][A-Za-z0-9+.-]*://[^\s'\"<>`]+")
-_PAIR = re.compile(r"(?<![\w.-])([A-Za-z_][\w.-]*)=([^\s&'\"<>;,)]+)")
+_PAIR = re.compile(r"(?<![\w.-])([A-Za-z_][\w.-]*)=([^\s&'\"<>;,)#]+)")
 _NAME_PARTS = ("pass", "pwd", "secret", "token", "auth", "signature", "credential", "session")
 _TOKEN_CHARS = re.compile(r"[A-Za-z0-9._~=+%-]+")
 _FLAG = re.compile(r"(-{1,2}[A-Za-z][\w-]*)(=|:\s*)(.+)", re.S)
@@ -94,7 +94,7 @@ def redact(text: str | None) -> str:
     if not text:
         return "" if text is None else text
     text = _URL.sub(lambda m: _url(m.group(0)), str(text))
-    return _PAIR.sub(lambda m: f"{m.group(1)}={MASK}" if is_secret_name(m.group(1)) and m.group(2) != MASK
+    return _PAIR.sub(lambda m: f"{m.group(1)}={MASK}" if is_secret_name(m.group(1)) and not m.group(2).startswith(MASK)
                      else m.group(0), text)
 
 
