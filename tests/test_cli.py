@@ -209,12 +209,12 @@ def test_cli_imports_where_fcntl_does_not_exist(tmp_path: Path):
     code = (
         "import sys\n"
         "sys.modules['fcntl'] = None  # import fcntl now raises ImportError\n"
-        "import monitor.cli, monitor.runner, monitor.alerts\n"
+        "import monitor.cli, monitor.runner, monitor.delivery.sinks.log as log_sink\n"
         "from pathlib import Path\n"
-        "sink = monitor.alerts.LogSink(Path(sys.argv[1]))\n"
+        "sink = log_sink.LogSink(Path(sys.argv[1]))\n"
         "sink.send('job', '2026-W10', [{'event_key': 'k1', 'kind': 'emerged', 'metric': 'm', 'segment': None,\n"
         "           'message': 'x', 'period': '2026-W10', 'job': 'job', 'detected_at': '2026-01-01T00:00:00Z'}])\n"
-        "print(monitor.alerts.fcntl)\n")
+        "print(log_sink.fcntl)\n")
     out = tmp_path / "alerts.jsonl"
     proc = subprocess.run([sys.executable, "-c", code, str(out)], env=ENV, capture_output=True, text=True)
     assert proc.returncode == 0, proc.stderr

@@ -31,8 +31,6 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable, Mapping, NoReturn, Protocol, Sequence
 
-from monitor.model import EVENT_KINDS
-
 __all__ = ["Sink", "SinkType", "SpecReader", "Attachment", "get", "types", "read_kinds", "fingerprint",
            "alert_line", "batch_id", "KINDS_KEY"]
 
@@ -118,9 +116,11 @@ def get(name: str) -> SinkType:
 
 def read_kinds(r: SpecReader, spec: dict, path: str) -> frozenset[str] | None:
     """The optional ``kinds:`` list of an alert: the event kinds its channel receives (None: all)."""
-    accepted = f"a list of event kinds from {', '.join(EVENT_KINDS)}"
     if spec.get(KINDS_KEY) is None:
         return None
+    from monitor.model import EVENT_KINDS  # only when asked: the model loads numpy, config errors stay fast
+
+    accepted = f"a list of event kinds from {', '.join(EVENT_KINDS)}"
     kinds = r.strings(spec, KINDS_KEY, path, accepted)
     for index, kind in enumerate(kinds):
         if kind not in EVENT_KINDS:
