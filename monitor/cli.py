@@ -18,7 +18,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, Sequence, TextIO
 
 from . import __version__, methods
-from .errors import EXIT_BUSY, EXIT_FAILED, SegwatchError, UsageError
+from .errors import EXIT_BUSY, EXIT_EMPTY, EXIT_FAILED, SegwatchError, UsageError
 from .redact import redact
 
 if TYPE_CHECKING:  # the command line imports the heavy modules only when a command needs them
@@ -241,12 +241,44 @@ def _job(cfg: Any) -> Any:
 def cmd_run(args: argparse.Namespace, out: TextIO) -> int:
     with _job(_load(args.config)) as job:
         report = job.run(args.period)
+        empty = _empty_line(job, report, latest=args.period is None) if report.rows == 0 else None
     if args.json:
         json.dump(report.to_json(), out, indent=2)
         out.write("\n")
     else:
         out.write(render_report(report))
+    if empty:
+        out.flush()
+        _notice(args, empty, EXIT_EMPTY)
+        return EXIT_EMPTY
     return 0
+
+
+def _where(cfg: Any) -> str:
+    src = cfg.source
+    return f"{src.table}.{src.time_column}" if src.table else f"the query's {src.time_column}"
+
+
+def _empty_line(job: Any, report: PeriodReport, *, latest: bool) -> str:
+    """The one line for a period without rows: which window was read where, and what may be wrong."""
+    cfg, p = job.config, report.period
+    window = f"{_where(cfg)} in [{p.start:%Y-%m-%d %H:%M}, {p.end:%Y-%m-%d %H:%M}) {p.start.tzinfo}"
+    if latest:
+        before = job.history.previous(p)
+        since = (f"the newest stored period is {before.period}: has the data stopped arriving?" if before
+                 else "nothing is stored yet; give --period for an earlier one")
+        return (f"the latest complete period, {p.ident}, of job {cfg.job} had no rows ({window}); nothing stored; "
+                f"{since}")
+    return (f"period {p.ident} of job {cfg.job} had no rows ({window}); nothing stored. If the table has rows "
+            f"then, check that source.time_column holds timestamps or dates segwatch can read")
+
+
+def _notice(args: argparse.Namespace, text: str, code: int) -> None:
+    """A one-line notice on stderr that is not a failure (skipped, empty): shown under -q too."""
+    if args.log_format == "json":
+        log.warning("%s", text, extra={"exit_code": code})
+    else:
+        print(f"Note: {text}", file=sys.stderr)
 
 
 def cmd_backfill(args: argparse.Namespace, out: TextIO) -> int:
@@ -263,8 +295,16 @@ def cmd_backfill(args: argparse.Namespace, out: TextIO) -> int:
                 out.write(json.dumps(report.to_json()) + "\n")
         if bar:
             bar.done()
+        cfg = job.config
     if not args.json:
-        out.write(render_backfill(job.config.job, reports))
+        out.write(render_backfill(cfg.job, reports))
+    empty = [r.period.ident for r in reports if r.rows == 0]
+    if reports and len(empty) == len(reports):
+        out.flush()
+        _notice(args, f"no period from {reports[0].period.ident} to {reports[-1].period.ident} of job {cfg.job} "
+                      f"had rows in {_where(cfg)}; nothing stored. Check the range, and that source.time_column "
+                      f"holds timestamps or dates segwatch can read", EXIT_EMPTY)
+        return EXIT_EMPTY
     return 0
 
 
@@ -436,21 +476,62 @@ def _p(x: Any) -> str:
     return f"{x:.1e}" if x < 0.001 else f"{x:.3f}"
 
 
+def clean(text: Any) -> str:
+    """``text`` safe to print on a terminal: every character that is not printable -- control
+    characters (ESC of ANSI/OSC sequences, newline, carriage return), bidirectional controls
+    (U+202E ...), line separators -- is written as a visible escape (``\\x1b``, ``\\n``, ``\\u202e``).
+    Labels come from the source's data, so a table can show them but they cannot drive the terminal,
+    reorder a line or forge one."""
+    text = str(text)
+    if text.isprintable():
+        return text
+    named = {"\n": "\\n", "\r": "\\r", "\t": "\\t"}
+    return "".join(ch if ch.isprintable() else named.get(ch) or
+                   (f"\\x{ord(ch):02x}" if ord(ch) < 0x100 else f"\\u{ord(ch):04x}" if ord(ch) < 0x10000
+                    else f"\\U{ord(ch):08x}") for ch in text)
+
+
 def _table(header: Sequence[str], rows: Sequence[Sequence[str]]) -> str:
-    widths = [max(len(str(c)) for c in col) for col in zip(header, *rows)]
-    lines = ["  ".join(str(c).ljust(w) for c, w in zip(header, widths)).rstrip()]
-    lines.append("  ".join("-" * w for w in widths))
-    lines += ["  ".join(str(c).ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows]
-    return "\n".join(lines) + "\n"
+    return _grid(header, rows)
+
+
+#: how many segments a terminal table names in its "stands apart" column before "+N more"
+TOP_SEGMENTS = 5
+
+
+def _df(d: Any) -> str:
+    """A degree of freedom: whole numbers as integers (``F(49, 1000000)``), Welch's fractional
+    denominator with one decimal (``F(4, 88.2)``)."""
+    if not isinstance(d, (int, float)) or not math.isfinite(d):
+        return "-"
+    return str(int(d)) if float(d).is_integer() else f"{d:.1f}"
+
+
+def _standing_apart(segments: Sequence[dict[str, Any]]) -> str:
+    """Flagged segments, furthest from the overall mean first; the first few, then ``+N more``."""
+    flagged = [s for s in segments if s.get("flag")]
+    sized = [(s.get("n") or 0, s.get("mean")) for s in segments]
+    total = sum(n for n, m in sized if isinstance(m, (int, float)) and math.isfinite(m))
+    centre = (sum(n * m for n, m in sized if isinstance(m, (int, float)) and math.isfinite(m)) / total
+              if total else None)
+
+    def distance(s: dict[str, Any]) -> float:
+        m = s.get("mean")
+        return abs(m - centre) if centre is not None and isinstance(m, (int, float)) and math.isfinite(m) else 0.0
+
+    flagged.sort(key=distance, reverse=True)  # stable: equal distances keep the stored order
+    names = [f"{s['segment']} {'▲' if s['flag'] == 'high' else '▼'}" for s in flagged[:TOP_SEGMENTS]]
+    if len(flagged) > TOP_SEGMENTS:
+        names.append(f"+{len(flagged) - TOP_SEGMENTS} more")
+    return ", ".join(names)
 
 
 def _metric_row(m: dict[str, Any]) -> list[str]:
     df = m.get("df") or []
     stat = "-" if m.get("statistic") is None else (
-        _statistic_text(m["method"], _g(m["statistic"], 4), [_g(d, 4) for d in df]))
+        _statistic_text(m["method"], _g(m["statistic"], 4), [_df(d) for d in df]))
     eff = m.get("effect_size") or {}
-    flagged = ", ".join(f"{s['segment']} {'▲' if s['flag'] == 'high' else '▼'}"
-                        for s in m.get("segments", []) if s.get("flag"))
+    flagged = _standing_apart(m.get("segments", []))
     broken = [k for k, c in (m.get("assumptions") or {}).items() if c.get("passed") is False]
     return [m["metric"], m["method"], stat, _p(m.get("p_value")), _p(m.get("q_value")),
             "yes" if m.get("significant") else "no",
@@ -465,14 +546,16 @@ METRIC_HEADER = ["metric", "method", "statistic", "p", "q", "sig", "effect", "st
 def render_report(report: PeriodReport) -> str:
     doc = report.to_json()
     p = report.period
-    head = (f"{report.job} {p.ident}  [{p.start:%Y-%m-%d %H:%M} .. {p.end:%Y-%m-%d %H:%M}) {p.start.tzinfo}  "
+    head = (f"{clean(report.job)} {p.ident}  [{p.start:%Y-%m-%d %H:%M} .. {p.end:%Y-%m-%d %H:%M}) {p.start.tzinfo}  "
             f"{report.rows} rows, {len(report.segments)} segments\n\n")
+    if report.rows == 0:
+        return head + f"{report.note or 'the source had no rows in this period'}\n"
     body = _table(METRIC_HEADER, [_metric_row(m) for m in doc["metrics"]])
-    notes = [f"  {m['metric']}: {m['note']}" for m in doc["metrics"] if m.get("note")]
+    notes = [f"  {clean(m['metric'])}: {clean(m['note'])}" for m in doc["metrics"] if m.get("note")]
     if notes:
         body += "\nnotes:\n" + "\n".join(notes) + "\n"
     if report.events:
-        body += "\nevents:\n" + "".join(f"  {e.kind:<20} {e.message}\n" for e in report.events)
+        body += "\nevents:\n" + "".join(f"  {e.kind:<20} {clean(e.message)}\n" for e in report.events)
     else:
         body += "\nno events: nothing changed since the previous stored period.\n"
     return head + body
@@ -481,7 +564,10 @@ def render_report(report: PeriodReport) -> str:
 def render_backfill(job: str, reports: Sequence[PeriodReport]) -> str:
     if not reports:
         return "No periods in that range.\n"
-    lines = [f"{job}: {len(reports)} periods computed, {reports[0].period.ident} to {reports[-1].period.ident}", ""]
+    empty = [r.period.ident for r in reports if r.rows == 0]
+    lines = [f"{clean(job)}: {len(reports)} periods computed, {reports[0].period.ident} to "
+             f"{reports[-1].period.ident}"
+             + (f"; {len(empty)} had no rows, nothing stored for them: {_runs(empty)}" if empty else ""), ""]
     counts: dict[str, int] = {}
     for r in reports:
         for e in r.events:
@@ -490,8 +576,14 @@ def render_backfill(job: str, reports: Sequence[PeriodReport]) -> str:
     lines.append("")
     for r in reports:
         for e in r.events:
-            lines.append(f"{r.period.ident}  {e.kind:<20} {e.message}")
+            lines.append(f"{r.period.ident}  {e.kind:<20} {clean(e.message)}")
     return "\n".join(lines) + "\n"
+
+
+def _runs(idents: Sequence[str], most: int = 6) -> str:
+    """Period identifiers, at most ``most`` of them, then ``+N more``."""
+    shown = ", ".join(idents[:most])
+    return shown + (f" +{len(idents) - most} more" if len(idents) > most else "")
 
 
 def _marks(e: dict[str, Any]) -> str:
@@ -510,7 +602,9 @@ def _decimals(values: Sequence[Any]) -> int:
 
 def _grid(header: Sequence[str], rows: Sequence[Sequence[str]], right: Sequence[int] = ()) -> str:
     """A plain-text table; the columns in ``right`` are right-aligned (numbers)."""
-    widths = [max(len(str(c)) for c in col) for col in zip(header, *rows)]
+    header = [clean(c) for c in header]
+    rows = [[clean(c) for c in r] for r in rows]
+    widths = [max(len(c) for c in col) for col in zip(header, *rows)]
 
     def line(cells: Sequence[str]) -> str:
         return "  ".join(str(c).rjust(w) if i in right else str(c).ljust(w)

@@ -32,7 +32,7 @@ from .delivery.relay import RELAY_WAIT_SECONDS, RelayOutcome, build_sinks, chann
 from .analysis import analyse_period, load_statistics_in_background
 from .clock import Clock, SystemClock
 from .config import JobConfig, config_hash
-from .errors import LeaseLost, PeriodBusy, SegwatchError
+from .errors import LeaseLost, PeriodBusy, PeriodError, SegwatchError
 from .events import Baseline, derive_events, lookback
 from .store.history import History, iso_utc
 from .store.ledger import LEASE_SECONDS, Claim, Ledger, LedgerEntry
@@ -126,14 +126,32 @@ class Job:
         return timedelta(minutes=self.config.scheduling.settle_minutes)
 
     def period(self, ident: str | None = None) -> Period:
-        """The period named by ``ident``, or the latest complete one by the clock."""
+        """The period named by ``ident``, or the latest complete one by the clock.
+
+        Raises :class:`~monitor.errors.PeriodError` for a period that has not started yet
+        (no record can be in it: computing it would store an empty or partial answer).
+        """
         cfg = self.config
         if ident is None:
             return latest_complete(cfg.period, self.clock.now(), cfg.timezone)
-        return parse_period(cfg.period, ident, cfg.timezone)
+        period = parse_period(cfg.period, ident, cfg.timezone)
+        self._refuse_future(period, f"period {period.ident}")
+        return period
 
     def periods(self, first: str, last: str) -> list[Period]:
-        return period_range(self.config.period, first, last, self.config.timezone)
+        """Every period from ``first`` to ``last``; refuses a range that reaches past today."""
+        found = period_range(self.config.period, first, last, self.config.timezone)
+        if found:
+            self._refuse_future(found[-1], f"--to {found[-1].ident}")
+        return found
+
+    def _refuse_future(self, period: Period, what: str) -> None:
+        now = self.clock.now()
+        if period.start_utc > now:
+            latest = latest_complete(self.config.period, now, self.config.timezone)
+            raise PeriodError(f"{what}: that period of job {self.config.job} has not started yet (it starts "
+                              f"{period.start:%Y-%m-%d %H:%M} {period.start.tzinfo}); the latest complete "
+                              f"period is {latest.ident}")
 
     def settled(self, entry: LedgerEntry | None, period: Period) -> bool:
         """Whether ``entry`` says ``period`` is done from a run made after it closed and settled."""

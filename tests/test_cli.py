@@ -266,3 +266,125 @@ def test_a_period_held_by_a_process_on_another_host_exits_3(project: Path, capsy
     assert err[0].startswith("Skipped: period 2026-W10 of job hubs is being computed by otherbox:14861:0123 until ")
     assert "if that process has stopped, run again after that time" in err[0]
     assert main(["run", str(project), "--period", "2026-W11"]) == 0  # other periods are not blocked
+
+
+def test_a_future_period_is_refused_in_one_line(project: Path, capsys):
+    assert main(["run", str(project), "--period", "2999-W01"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("Error: period 2999-W01: ")
+    assert "has not started yet" in err[0] and "the latest complete period is " in err[0]
+    assert not (project.parent / "logs" / "alerts.jsonl").exists()  # nothing ran, nothing was written
+
+
+def test_backfill_into_the_future_is_refused_before_anything_runs(project: Path, capsys):
+    from monitor.clock import SystemClock
+
+    next_year = f"{SystemClock().now().year + 1}-W01"
+    assert main(["backfill", str(project), "--from", "2026-W10", "--to", next_year]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and f"--to {next_year}" in err[0] and "has not started yet" in err[0]
+    assert main(["history", str(project), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["metrics"] == []  # not even the first week was computed
+
+
+def test_job_periods_refuses_a_range_past_the_clock(project: Path):
+    from datetime import timezone
+
+    from monitor.clock import FixedClock
+    from monitor.config import load_config
+    from monitor.errors import PeriodError
+    from monitor.runner import Job
+
+    with Job(load_config(project), clock=FixedClock(datetime(2026, 3, 20, tzinfo=timezone.utc))) as job:
+        assert [p.ident for p in job.periods("2026-W10", "2026-W12")] == ["2026-W10", "2026-W11", "2026-W12"]
+        with pytest.raises(PeriodError, match="--to 2026-W13: .* has not started yet .* is 2026-W11"):
+            job.periods("2026-W10", "2026-W13")
+        with pytest.raises(PeriodError, match="period 2026-W13: "):
+            job.period("2026-W13")
+
+
+def test_run_of_a_period_without_rows_says_so_and_exits_4(project: Path, capsys):
+    assert main(["run", str(project), "--period", "2026-W20"]) == 4
+    cap = capsys.readouterr()
+    err = cap.err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("Note: period 2026-W20 of job hubs had no rows (parcels.ts in [")
+    assert "nothing stored" in err[0] and "source.time_column" in err[0]
+    assert "nothing changed" not in cap.out and "no rows" in cap.out
+    assert main(["run", str(project), "--period", "2026-W20", "--json"]) == 4
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["rows"] == 0 and doc["metrics"] == [] and "no rows" in doc["note"]
+
+
+def test_run_of_the_latest_period_after_the_data_ended_says_the_latest_is_empty(project: Path, capsys):
+    assert main(["run", str(project), "--period", "2026-W11"]) == 0
+    capsys.readouterr()
+    assert main(["run", str(project)]) == 4  # the latest complete week: long after the data end
+    cap = capsys.readouterr()
+    err = cap.err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("Note: the latest complete period, ")
+    assert "the newest stored period is 2026-W11" in err[0]
+    assert "nothing changed" not in cap.out
+
+
+def test_backfill_tells_empty_periods_apart(project: Path, capsys):
+    assert main(["backfill", str(project), "--from", "2026-W10", "--to", "2026-W13"]) == 0
+    out = capsys.readouterr().out
+    assert "4 periods computed" in out and "2 had no rows, nothing stored for them: 2026-W12, 2026-W13" in out
+    assert main(["backfill", str(project), "--from", "2026-W20", "--to", "2026-W22"]) == 4
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "no period from 2026-W20 to 2026-W22 of job hubs had rows" in err[0]
+
+
+def test_json_log_format_notice_for_an_empty_period(project: Path, capsys):
+    assert main(["run", str(project), "--period", "2026-W20", "--log-format", "json"]) == 4
+    lines = capsys.readouterr().err.strip().splitlines()
+    assert len(lines) == 1 and json.loads(lines[0])["exit_code"] == 4
+
+
+# ------------------------------------------------------------------ the terminal
+
+
+HOSTILE = ("\x1b]0;pwned\x07Osc", "Nl\nforged  line", "\u202eRtl", "\x1b[31mRed")
+
+
+def test_hostile_labels_are_shown_escaped_in_run_and_history(tmp_path: Path, capsys):
+    cfg = _write_project(tmp_path, hubs=HOSTILE)
+    assert main(["run", str(cfg), "--period", "2026-W11"]) == 0
+    assert main(["history", str(cfg), "--metric", "dwell"]) == 0
+    assert main(["history", str(cfg)]) == 0
+    out = capsys.readouterr().out
+    for bad in ("\x1b", "\x07", "\u202e", "Nl\nforged"):
+        assert bad not in out
+    assert "\\x1b]0;pwned\\x07Osc" in out and "\\u202eRtl" in out and "Nl\\nforged  line" in out
+    # the stored label is the real one: only the terminal copy is escaped
+    assert main(["run", str(cfg), "--period", "2026-W11", "--json"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert set(HOSTILE) <= {s["segment"] for s in doc["metrics"][0]["segments"]}
+
+
+def _metric(segments, df, method="anova"):
+    return {"metric": "m", "method": method, "statistic": 3.2, "df": df, "p_value": 0.01, "q_value": 0.02,
+            "significant": True, "effect_size": {"name": "omega_squared", "value": 0.1}, "segments": segments,
+            "assumptions": {}}
+
+
+def test_long_flag_lists_show_the_furthest_segments_then_plus_n_more():
+    from monitor.cli import TOP_SEGMENTS, _metric_row
+
+    segs = [{"segment": f"s{i:02d}", "n": 10, "mean": 50.0 + (i if i < 25 else 0),
+             "flag": "high" if i < 25 else None} for i in range(50)]
+    cell = _metric_row(_metric(segs, [49, 1_000_000]))[7]
+    assert cell.endswith(f"+{25 - TOP_SEGMENTS} more")
+    assert cell.split(", ")[0] == "s24 ▲"  # the furthest from the overall mean first
+    assert cell.count("▲") == TOP_SEGMENTS
+
+
+@pytest.mark.parametrize(("df", "method", "shown"), [
+    ([49, 1_000_000], "anova", "F(49, 1000000)"),
+    ([4.0, 88.234], "welch", "F(4, 88.2)"),
+    ([3], "kruskal", "H(3)"),
+])
+def test_degrees_of_freedom_print_as_integers_where_whole(df, method, shown):
+    from monitor.cli import _metric_row
+
+    assert _metric_row(_metric([], df, method))[2].startswith(shown + " = ")
