@@ -382,7 +382,7 @@ def _metric_emerged(r: MetricResult, seg_word: str, eff: float, run: Run | None,
     tail, extra = _confirmed(run) if run is not None else (f"; it did not {prev_label}", {})
     return Event(
         "emerged", r.metric, None,
-        f"{r.metric} now differs between {seg_word}s ({r.method}, q = {_p(r.q_value)}{eff_text}){tail}.",
+        f"{r.metric} now differs by {seg_word} ({r.method}, q = {_p(r.q_value)}{eff_text}){tail}.",
         {"method": r.method, "p_value": r.p_value, "q_value": r.q_value, "effect": eff, **extra})
 
 
@@ -394,7 +394,7 @@ def _metric_cleared(r: MetricResult, m: Any, seg_word: str, eff: float, importan
         why = f" at the practical threshold ({r.effect_size.name.replace('_', ' ')} {_fmt(eff)} < {m.min_effect})"
     return Event(
         "cleared", r.metric, None,
-        f"{r.metric} no longer differs between {seg_word}s{why}{tail}.",
+        f"{r.metric} no longer differs by {seg_word}{why}{tail}.",
         {"method": r.method, "p_value": r.p_value, "q_value": r.q_value, "effect": eff, **extra})
 
 
@@ -414,7 +414,7 @@ def _segment_emerged(r: MetricResult, seg: str, flag: str, seg_word: str, unit: 
         where = f"{word} the reference {seg_word} {r.reference}"
         count = ""
     else:
-        where = f"{word} the other {seg_word}s"
+        where = f"{word} the rest"  # no plural of the segment column's name (no "branchs")
         n = row.above if flag == "high" else row.below
         count = f", significantly {word} {n} of {len(r.segments) - 1 - _excluded(r)} others"
     return Event(
@@ -439,7 +439,7 @@ def _segment_cleared(r: MetricResult, seg: str, flag: str, seg_word: str, run: R
             {"previous_flag": flag, "reference": r.reference, **extra})
     return Event(
         "cleared", r.metric, seg,
-        f"{seg_word} {seg} no longer stands {word} the other {seg_word}s on {r.metric}{tail}.",
+        f"{seg_word} {seg} no longer stands {word} the rest on {r.metric}{tail}.",
         {"previous_flag": flag, **extra})
 
 

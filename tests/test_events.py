@@ -59,7 +59,7 @@ def test_first_period_significant_metric_and_flag_emerge(job):
     ev = derive_events(job, [result(flags={"A": "high"})], ["A", "B", "C"], 0, 150, Baseline.empty())
     assert kinds(ev) == [("emerged", "dwell", None), ("emerged", "dwell", "A")]
     msg = next(e.message for e in ev if e.segment == "A")
-    assert msg.startswith("depot A now stands above the other depots on dwell")
+    assert msg.startswith("depot A now stands above the rest on dwell")
     assert "significantly above 2 of 2 others" in msg
 
 
@@ -70,7 +70,7 @@ def test_unchanged_state_raises_nothing_and_clearing_is_reported(job):
     now = [result(significant=False, q=0.4)]
     ev = derive_events(job, now, ["A", "B", "C"], 0, 150, base)
     assert kinds(ev) == [("cleared", "dwell", None), ("cleared", "dwell", "A")]
-    assert ev[0].message == "dwell no longer differs between depots (q = 0.400)."
+    assert ev[0].message == "dwell no longer differs by depot (q = 0.400)."
 
 
 def test_min_effect_keeps_small_significant_effects_quiet(job):

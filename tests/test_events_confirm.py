@@ -138,11 +138,11 @@ def test_two_in_a_row_emerge_and_clear_with_their_words(tmp_path):
     ev = stream(job, seq)
     assert metric_kinds(ev) == [[], ["emerged"], [], ["cleared"]]
     emerged = ev[1][0]
-    assert emerged.message == ("dwell now differs between depots (anova, q = 0.001, omega squared 0.1); "
+    assert emerged.message == ("dwell now differs by depot (anova, q = 0.001, omega squared 0.1); "
                                "confirmed over the last 2 periods, since 2026-W01.")
     assert emerged.detail["confirmed_periods"] == 2 and emerged.detail["since"] == "2026-W01"
     cleared = ev[3][0]
-    assert cleared.message == ("dwell no longer differs between depots (q = 0.400); "
+    assert cleared.message == ("dwell no longer differs by depot (q = 0.400); "
                                "confirmed over the last 2 periods, since 2026-W03.")
 
 
@@ -178,7 +178,7 @@ def test_min_effect_counts_as_no_difference(tmp_path):
            [result("cost", effect=0.01)]]
     ev = stream(job, seq)
     assert metric_kinds(ev, "cost") == [[], ["emerged"], [], ["cleared"]]
-    assert ev[3][0].message == ("cost no longer differs between depots at the practical threshold "
+    assert ev[3][0].message == ("cost no longer differs by depot at the practical threshold "
                                 "(omega squared 0.01 < 0.05); confirmed over the last 2 periods, since 2026-W03.")
 
 
@@ -189,10 +189,10 @@ def test_segment_flags_need_k_periods_and_a_flip_gives_both_events(tmp_path):
     seg = [[(e.kind, e.detail.get("flag") or e.detail.get("previous_flag")) for e in p if e.segment == "A"]
            for p in ev]
     assert seg == [[], [], [("emerged", "high")], [], [], [("emerged", "low"), ("cleared", "high")]]
-    assert ev[2][1].message == ("depot A now stands above the other depots on dwell (mean 12, +2 against the "
+    assert ev[2][1].message == ("depot A now stands above the rest on dwell (mean 12, +2 against the "
                                 "rest, significantly above 2 of 2 others); confirmed over the last 3 periods, "
                                 "since 2026-W01.")
-    assert ev[5][1].message == ("depot A no longer stands above the other depots on dwell; confirmed over the "
+    assert ev[5][1].message == ("depot A no longer stands above the rest on dwell; confirmed over the "
                                 "last 3 periods, since 2026-W04.")
 
 
