@@ -86,6 +86,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = add("run", "compute one period (default: the latest complete one), store it and send its alerts")
     p.add_argument("--period", metavar="ID", help="period identifier: 2026-02-03, 2026-W06 or 2026-02")
     p.add_argument("--json", action="store_true", help="print the result as one JSON document")
+    p.add_argument("--dry-run", action="store_true",
+                   help="compute and compare with the stored history, but store nothing and send nothing")
 
     p = add("backfill", "run every period in a range, oldest first")
     p.add_argument("--from", dest="first", metavar="ID", required=True, help="first period")
@@ -94,7 +96,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = add("history", "print the stored results over periods")
     p.add_argument("--metric", metavar="NAME", help="one metric, segment by segment")
-    p.add_argument("--json", action="store_true", help="print the stored entries as JSON")
+    p.add_argument("--json", action="store_true", help="print the stored entries as JSON (same as --format json)")
+    p.add_argument("--format", choices=("table", "json", "jsonl", "csv"), default="table",
+                   help="table (default); json: one document; jsonl: one JSON object per stored metric-period, "
+                        "then per event; csv: one row per period, metric and segment")
 
     add("check", "validate the config and reach the source and history databases")
 
@@ -240,7 +245,7 @@ def _job(cfg: Any) -> Any:
 
 def cmd_run(args: argparse.Namespace, out: TextIO) -> int:
     with _job(_load(args.config)) as job:
-        report = job.run(args.period)
+        report = job.run(args.period, store=False) if args.dry_run else job.run(args.period)
         empty = _empty_line(job, report, latest=args.period is None) if report.rows == 0 else None
     if args.json:
         json.dump(report.to_json(), out, indent=2)
@@ -317,9 +322,19 @@ def cmd_history(args: argparse.Namespace, out: TextIO) -> int:
                 f"--metric: no metric {args.metric!r} in {cfg.path} (metrics: {', '.join(names)})")
         entries = job.history.metric_history(args.metric)
         events = job.history.events()
-    if args.json:
+    fmt = "json" if args.json else args.format
+    if fmt == "json":
         json.dump({"job": cfg.job, "metrics": entries, "events": events}, out, indent=2)
         out.write("\n")
+        return 0
+    if fmt == "jsonl":
+        for e in entries:
+            out.write(json.dumps({"record": "metric", "job": cfg.job, **e}, ensure_ascii=False) + "\n")
+        for ev in events:
+            out.write(json.dumps({"record": "event", "job": cfg.job, **ev}, ensure_ascii=False, default=str) + "\n")
+        return 0
+    if fmt == "csv":
+        write_history_csv(cfg.job, entries, out)
         return 0
     if not entries:
         out.write(f"No stored periods for job {cfg.job} yet; run `segwatch run {args.config}` first.\n")
@@ -329,6 +344,30 @@ def cmd_history(args: argparse.Namespace, out: TextIO) -> int:
     else:
         out.write(render_overview(cfg.job, entries, cfg.fdr.level))
     return 0
+
+
+HISTORY_CSV_COLUMNS = ("job", "period", "metric", "method", "statistic", "df_between", "df_within", "p_value",
+                       "q_value", "significant", "effect", "effect_value", "segment", "n", "mean", "sd", "flag",
+                       "excluded")
+
+
+def write_history_csv(job: str, entries: Sequence[dict[str, Any]], out: TextIO) -> None:
+    """The stored history as CSV (RFC 4180), one row per period, metric and segment (a metric
+    without segments gets one row with the segment cells empty); labels exactly as stored."""
+    import csv
+
+    writer = csv.writer(out, lineterminator="\r\n")
+    writer.writerow(HISTORY_CSV_COLUMNS)
+    for e in entries:
+        df = list(e.get("df") or []) + [None, None]
+        eff = e.get("effect_size") or {}
+        head = [job, e["period"], e["metric"], e.get("method"), e.get("statistic"), df[0], df[1], e.get("p_value"),
+                e.get("q_value"), e.get("significant"), eff.get("name"), eff.get("value")]
+        segments = e.get("segments") or [{}]
+        for seg in segments:
+            writer.writerow(["" if v is None else v for v in head + [
+                seg.get("segment"), seg.get("n"), seg.get("mean"), seg.get("sd"), seg.get("flag"),
+                seg.get("excluded")]])
 
 
 def cmd_check(args: argparse.Namespace, out: TextIO) -> int:
@@ -558,6 +597,8 @@ def render_report(report: PeriodReport) -> str:
         body += "\nevents:\n" + "".join(f"  {e.kind:<20} {clean(e.message)}\n" for e in report.events)
     else:
         body += "\nno events: nothing changed since the previous stored period.\n"
+    if report.note:
+        body += f"\n{report.note}\n"
     return head + body
 
 

@@ -158,15 +158,28 @@ class Job:
         return (entry is not None and entry.state == "done" and entry.finished_at is not None
                 and entry.finished_at >= period.end_utc + self.settle)
 
-    def run(self, period: Period | str | None = None, *, only_if_owed: bool = False) -> PeriodReport | None:
+    def run(self, period: Period | str | None = None, *, only_if_owed: bool = False, store: bool = True,
+            deliver: bool | None = None) -> PeriodReport | None:
         """Compute one period, store it (replacing an earlier run of it) and deliver its alerts.
 
         Raises :class:`~monitor.errors.PeriodBusy` when another process holds the
         period. With ``only_if_owed`` (the scheduler's catch-up), a period that became
         done (and settled) meanwhile is left alone and None is returned.
+
+        ``store=False`` (``segwatch run --dry-run``) computes the period and its events
+        against the stored history but writes nothing -- no ledger mark, no results, no
+        outbox -- and sends nothing, so a config can be tried safely. ``deliver=False``
+        with ``store=True`` stores the results and leaves their alerts pending in the
+        outbox (``segwatch alerts --retry`` or the next run sends them).
         """
+        if deliver is None:
+            deliver = store
+        if deliver and not store:
+            raise ValueError("deliver=True needs store=True: alerts are sent from the stored outbox")
         if not isinstance(period, Period):
             period = self.period(period)
+        if not store:
+            return self._preview(period)
         cfg = self.config
         claim = self.ledger.claim(period.ident)
         if not claim.won:
@@ -182,7 +195,7 @@ class Job:
             log.info("job %s: computing %s [%s, %s) (attempt %d)", cfg.job, period.ident, period.start,
                      period.end, entry.attempts)
             with self.ledger.heartbeat(claim):
-                report = self._compute(period, claim)
+                report = self._compute(period, claim, deliver)
         except LeaseLost:
             raise
         except BaseException as exc:
@@ -190,7 +203,36 @@ class Job:
             raise
         return report
 
-    def _compute(self, period: Period, claim: Claim) -> PeriodReport:
+    def _preview(self, period: Period) -> PeriodReport:
+        """One period computed and compared with the stored history, nothing written or sent."""
+        cfg = self.config
+        log.info("job %s: computing %s [%s, %s) as a dry run", cfg.job, period.ident, period.start, period.end)
+        data = self.source.fetch(period)
+        nothing = RelayOutcome()
+        if data.rows == 0:
+            return PeriodReport(cfg.job, period, (), (), 0, 0, 0, (), nothing,
+                                "the source had no rows in this period; dry run: nothing stored, nothing sent")
+        results = analyse_period(data.metrics, cfg)
+        baseline = Baseline.from_history(self._stored_before(period), cfg)
+        events = derive_events(cfg, results, data.segments, data.null_segment_rows, data.rows, baseline)
+        return PeriodReport(cfg.job, period, results, tuple(events), 0, data.rows, data.null_segment_rows,
+                            data.segments, nothing, "dry run: nothing stored, nothing sent")
+
+    def _stored_before(self, period: Period) -> list[Any]:
+        """The stored periods a dry run compares with; none when the history has no tables yet
+        (they are not created: a dry run writes nothing)."""
+        import sqlalchemy as sa
+
+        try:
+            if not sa.inspect(self.history.engine).has_table("sw_runs"):
+                return []
+        except sa.exc.SQLAlchemyError as exc:
+            log.warning("job %s: dry run without the history (%s): every finding counts as new", self.config.job,
+                        exc.__class__.__name__)
+            return []
+        return self.history.recent(period, lookback(self.config.confirm))
+
+    def _compute(self, period: Period, claim: Claim, deliver: bool = True) -> PeriodReport:
         cfg = self.config
         # a server computes the sums while this process waits: load scipy meanwhile
         loading = load_statistics_in_background() if self.source.remote else None
@@ -199,7 +241,7 @@ class Job:
             loading.join()
         if data.rows == 0:
             self.ledger.finish_empty(claim, period.start, period.end)
-            outcome = self.deliver()
+            outcome = self.deliver() if deliver else RelayOutcome()
             note = "the source had no rows in this period; nothing was stored"
             log.info("job %s: %s skipped: %s", cfg.job, period.ident, note)
             return PeriodReport(cfg.job, period, (), (), 0, 0, 0, (), outcome, note)
@@ -212,7 +254,7 @@ class Job:
             rows=data.rows, null_segment_rows=data.null_segment_rows, segments=data.segments,
             lease_owner=claim.owner,
         )
-        outcome = self.deliver()
+        outcome = self.deliver() if deliver else RelayOutcome()
         log.info("job %s: %s stored, %d events (%d new), alerts sent %d", cfg.job, period.ident,
                  len(events), len(fresh), outcome.sent)
         return PeriodReport(cfg.job, period, results, tuple(events), len(fresh), data.rows,
