@@ -475,3 +475,7 @@ def test_sentences_need_no_plural_of_the_segment_column(tmp_path: Path, capsys):
     out = capsys.readouterr().out
     assert "dwell now differs by branch (" in out and "branch A now stands above the rest on dwell" in out
     assert "branchs" not in out
+    html = tmp_path / "report.html"
+    assert main(["report", str(cfg), "--period", "2026-W11", "--out", str(html)]) == 0
+    page = html.read_text()
+    assert "differ by branch this week" in page and "branchs" not in page

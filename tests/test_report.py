@@ -484,7 +484,7 @@ def test_demo_report_tells_the_planted_stories(demo: Path, tmp_path: Path):
     wait = text[text.index('id="metric-counter_wait_min"'):]
     wait = Page(wait[:wait.index("</section>")]).plain
     assert "equal spread: fails" in wait and "watched" in wait.lower()
-    assert "No clear difference between depots this week" in wait
+    assert "No clear difference by depot this week" in wait
     assert "Spreads differ: the middle half of" in wait
     for e in events:
         assert html.escape(e["message"], quote=True) in text

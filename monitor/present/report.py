@@ -385,10 +385,10 @@ def _masthead(d: ReportData) -> str:
     if sig:
         names = ", ".join(f"<a href=\"#{_anchor(m['metric'])}\">{_e(_display(m, d.metric_config.get(m['metric'])))}</a>"
                           for m in sig)
-        lede = (f"{len(sig)} of {len(d.metrics)} metrics differ between {_e(d.segment_word)}s this {word}: "
+        lede = (f"{len(sig)} of {len(d.metrics)} metrics differ by {_e(d.segment_word)} this {word}: "
                 f"{names}.")
     else:
-        lede = f"None of the {len(d.metrics)} metrics differs clearly between {_e(d.segment_word)}s this {word}."
+        lede = f"None of the {len(d.metrics)} metrics differs clearly by {_e(d.segment_word)} this {word}."
     if len(computed) < len(d.metrics):
         lede += f" {len(d.metrics) - len(computed)} could not be computed (see the notes)."
     n_ev = len(d.events_now)
@@ -401,7 +401,7 @@ def _masthead(d: ReportData) -> str:
         f"<p class=\"eyebrow\">segwatch report · job <strong>{_e(d.job)}</strong></p>\n"
         f"<h1>{_e(word.capitalize())} {_e(d.period)}</h1>\n"
         f"<p class=\"window\">{_when(run.get('period_start', ''))} to {_when(run.get('period_end', ''))}, "
-        f"{_e(d.timezone)} · {num(run.get('rows'), decimals=0)} rows · {len(segs)} {_e(d.segment_word)}s · "
+        f"{_e(d.timezone)} · {num(run.get('rows'), decimals=0)} rows · {len(segs)} segments ({_e(d.segment_word)}) · "
         f"q-values by {_e(method)}, level {lvl(d.fdr_level)}</p>\n"
         f"<p class=\"lede\">{lede}</p>\n</header>"
     )
@@ -597,18 +597,18 @@ def _summary(d: ReportData, m: Mapping[str, Any], decimals: int | None) -> str:
     if not _ok(m.get("p_value")):
         return f"Not computed this {word}: {_e(m.get('note') or 'no reason stored')}."
     if m.get("significant"):
-        text = f"The {seg}s differ this {word} (q {pval(q)}, at or below {lvl(d.fdr_level)})."
+        text = f"It differs by {seg} this {word} (q {pval(q)}, at or below {lvl(d.fdr_level)})."
         sc = _scale(d.metric_config.get(m["metric"]))
         for s in m.get("segments", []):
             if s.get("flag") in ("high", "low") and _ok(s.get("mean")) and _ok(s.get("diff_vs_rest")):
                 rest = sc.back(s["mean"] - s["diff_vs_rest"])
                 text += (f" {_e(s['segment'])} stands {'above' if s['flag'] == 'high' else 'below'} the rest: "
                          f"{sc.centre} {num(sc.back(s['mean']), decimals=decimals)} against "
-                         f"{num(rest, decimals=decimals)} for the other {seg}s' records.")
+                         f"{num(rest, decimals=decimals)} for the rest's records.")
         if not _flagged(m):
             text += f" No single {seg} stands apart from most of the others."
         return text
-    return f"No clear difference between {seg}s this {word} (q {pval(q)}, above {lvl(d.fdr_level)})."
+    return f"No clear difference by {seg} this {word} (q {pval(q)}, above {lvl(d.fdr_level)})."
 
 
 def _facts(d: ReportData, m: Mapping[str, Any]) -> str:
@@ -699,11 +699,11 @@ def _box_figure(d: ReportData, m: Mapping[str, Any], cfg: MetricConfig | None, k
         if m.get("sample_size"):
             how += f" Quantiles are estimated from a random sample of up to {m['sample_size']} values per {seg}."
     else:
-        how = (f"Quantiles were not stored for {'some' if with_q else 'these'} {seg}s (the period was computed "
+        how = (f"Quantiles were not stored for {'some' if with_q else 'these'} segments (the period was computed "
                "without values), so those are drawn as mean ± 1 standard deviation instead of a box.")
     if sc.log_axis:
         how += " The axis is logarithmic (the metric is compared on the log scale)."
-    label = f"{name}, {d.period}: {len(boxes)} {seg}s side by side"
+    label = f"{name}, {d.period}: {len(boxes)} segments ({seg}) side by side"
     svg = plots.box_svg(boxes, key=f"{key}box", label=label, ylabel=_unit_label(m, cfg), log_scale=sc.log_axis)
     text = _box_summary(m, boxes, seg, decimals, flat, sc)
     return (f"<figure class=\"chart\" aria-labelledby=\"{key}box-c\">{svg}"
@@ -798,7 +798,7 @@ def _trend_figure(d: ReportData, m: Mapping[str, Any], cfg: MetricConfig | None,
     word = _e(PERIOD_WORDS.get(d.period_kind, "period"))
     return (f"<figure class=\"chart\" aria-labelledby=\"{key}trend-c\">{svg}"
             f"<figcaption id=\"{key}trend-c\"><strong>The last {len(window)} stored {word}s.</strong> "
-            f"One panel per {_e(seg)}: its {sc.centre} with a 95% interval (dark), the other {_e(seg)}s behind "
+            f"One panel per {_e(seg)}: its {sc.centre} with a 95% interval (dark), the rest behind "
             f"it (grey); {plots.FLAG_MARK['high']} / {plots.FLAG_MARK['low']} mark {word}s where it stood "
             f"above / below the rest. {_e(text)}</figcaption></figure>")
 
