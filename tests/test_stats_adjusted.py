@@ -423,9 +423,14 @@ class TestDegenerate:
     def test_reference_without_records(self):
         cells = [Cell("A", ("x",), 4, 1.0, 2.0), Cell("B", ("x",), 5, 2.0, 2.0), Cell("R", ("x",), 0, 0.0, 0.0)]
         res = adjusted_comparison(cells, "R", ["size"])
-        assert math.isnan(res.segment_test.statistic)
         assert all(math.isnan(g.adjusted) for g in res.gaps)
         assert "reference segment 'r' has no records" in res.note.lower()
+        # the segment test does not need the reference: scipy.stats.f_oneway from the summaries' data
+        a = [1.0 - 0.5, 1.0, 1.0, 1.0 + 0.5]  # mean 1, m2 0.5
+        b = [2.0 - 0.5, 2.0, 2.0, 2.0, 2.0 + 0.5]  # mean 2, m2 0.5
+        cells = [Cell("A", ("x",), 4, 1.0, 0.5), Cell("B", ("x",), 5, 2.0, 0.5), Cell("R", ("x",), 0, 0.0, 0.0)]
+        res = adjusted_comparison(cells, "R", ["size"])
+        assert _close(res.segment_test.statistic, stats.f_oneway(a, b).statistic)
 
     def test_one_segment(self):
         res = adjusted_comparison([Cell("R", ("x",), 4, 1.0, 2.0)], "R", ["size"])

@@ -85,12 +85,13 @@ from __future__ import annotations
 
 import logging
 import math
-from collections.abc import Hashable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
 from scipy import optimize, stats
 
+from monitor.stats.cells import Cell
 from monitor.stats.posthoc import _DunnettRule
 
 __all__ = ["COVARIANCES", "AdjustedResult", "Cell", "Gap", "TermTest", "adjusted_comparison"]
@@ -112,43 +113,6 @@ _QMC_SEED = 20261202
 # ---------------------------------------------------------------------------
 # input and result types
 # ---------------------------------------------------------------------------
-@dataclass(frozen=True)
-class Cell:
-    """The records of one segment in one stratum cell, summarised.
-
-    Attributes
-    ----------
-    segment : str
-        Segment label.
-    levels : tuple
-        The cell's level of each adjustment column, in the order of ``columns``.
-    n : int
-        Number of records (cells with 0 records may be given; they are ignored).
-    mean : float
-        Mean of the records' values (on the analysis scale, e.g. of the logs).
-    m2 : float
-        Sum of squared deviations of the values from ``mean``.
-    mean_residual : float, optional
-        The exact mean minus ``mean`` (as :attr:`monitor.stats.summary.Moments.mean_residual`);
-        keeps the gaps accurate when the mean is large against the spread. Default 0.
-    """
-
-    segment: str
-    levels: tuple
-    n: int
-    mean: float
-    m2: float
-    mean_residual: float = 0.0
-
-    @classmethod
-    def from_moments(cls, segment: str, levels: Sequence[Hashable], moments) -> Cell:
-        """A cell from a :class:`~monitor.stats.summary.Moments` (``Decimal`` ones are converted)."""
-        m = moments.as_float() if getattr(moments, "is_exact", False) else moments
-        if m.n == 0:
-            return cls(segment, tuple(levels), 0, _NAN, _NAN)
-        return cls(segment, tuple(levels), int(m.n), float(m.mean), float(m.m2), float(m.mean_residual))
-
-
 @dataclass(frozen=True)
 class TermTest:
     """The test of one model term.
@@ -509,10 +473,12 @@ class _Fit:
         empty_test = TermTest("segment", _NAN, 0, _NAN, _NAN, _NAN)
 
         if self.reference not in self.order or not ref_ok:
-            self.notes.append(f"the reference segment {self.reference!r} has no records, so nothing can be compared with it")
+            self.notes.append(f"the reference segment {self.reference!r} has no records, so no gaps to it "
+                              "were computed (the segment test does not need it)")
         if len(present) < 2:
             self.notes.append("fewer than two segments have records, so there is nothing to compare")
-        if not ref_ok or len(present) < 2 or big_n < 2:
+        self.ref_ok = ref_ok
+        if len(present) < 2 or big_n < 2:
             gaps = tuple(self._nan_gap(s, None) for s in others)
             nan_strata = tuple(TermTest(c, _NAN, 0, _NAN, _NAN, _NAN) for c in self.columns)
             return self._assemble(empty_test, nan_strata, TermTest("additivity", _NAN, 0, _NAN, _NAN, _NAN),
@@ -561,7 +527,10 @@ class _Fit:
         center = cells[0].mean
         ybar = np.array([(c.mean - center) + c.mean_residual for c in cells], dtype=float)
         m2 = np.array([c.m2 for c in cells], dtype=float)
-        seg_levels = [s for s in present if s != self.reference]
+        # the baseline of the segment coding: the reference, or any segment when it has no records
+        # (the segment test and the sums of squares do not depend on the baseline)
+        base = self.reference if self.reference in present else present[0]
+        seg_levels = [s for s in present if s != base]
         blocks = [np.ones((len(cells), 1))]
         seg_index = {s: i for i, s in enumerate(seg_levels)}
         seg_block = np.zeros((len(cells), len(seg_levels)))
@@ -671,6 +640,8 @@ class _Fit:
 
     # ------------------------------------------------------------------- gaps
     def _gaps(self, full: _Solve, cov, df_resid: float, usable: bool) -> tuple[list[Gap], float]:
+        if not self.ref_ok:
+            return [self._nan_gap(s, None) for s in self.order if s != self.reference], _NAN
         estimable = {}
         for s, col in zip(self.seg_levels, self.seg_cols):
             loading = float(np.sum(full.vt[:, col] ** 2))
