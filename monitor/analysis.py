@@ -343,7 +343,9 @@ def _with_significant(pair: PairRow, significant: bool) -> PairRow:
 
 def analyse_period(inputs: Sequence[MetricInput], job: JobConfig) -> tuple[MetricResult, ...]:
     """Analyse every metric of a period and control the false discovery rate across them."""
-    return finalise([analyse_metric(d, job, len(inputs)) for d in inputs], job)
+    from . import adjustment  # metrics with adjust_for: the adjusted verdict, the raw one beside it
+
+    return finalise([adjustment.apply(analyse_metric(d, job, len(inputs)), d, job) for d in inputs], job)
 
 
 # ---------------------------------------------------------------- helpers

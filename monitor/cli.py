@@ -382,6 +382,9 @@ def cmd_check(args: argparse.Namespace, out: TextIO) -> int:
         sent = job.source.check_window(period)
         out.write(f"window   {period.ident}: {sent} {'query' if sent == 1 else 'queries'} of the period "
                   f"answered (no rows read)\n")
+        job.source.check_references()
+        if any(m.reference is not None for m in cfg.metrics):
+            out.write(f"source   reference segments present in {cfg.source.segment_column}\n")
         out.write(redact(f"history  {job.history.describe()}: tables ready\n"))
         for s in job.sinks:
             out.write(f"alert    {redact(s.channel)}\n")

@@ -125,6 +125,7 @@ class MetricConfig:
     decimals: int | None = None
     min_effect: float | None = None
     label: str | None = None
+    adjust_for: tuple[str, ...] = ()  # categorical columns the segments are compared within
 
 
 @dataclass(frozen=True)
@@ -247,15 +248,17 @@ class JobConfig:
 def config_hash(cfg: JobConfig) -> str:
     """A short, stable hash of the settings that change a computed statistic.
 
-    It covers each metric's name, column, test, reference, transform and min_effect
-    (in name order, since order changes no result), the FDR method and level, ``alpha``,
+    It covers each metric's name, column, test, reference, transform, min_effect and
+    adjust_for (in name order, since order changes no result), the FDR method and level, ``alpha``,
     the post-hoc settings and the quality limits. Labels, units, decimals, alerts,
     schedule and the source are left out. Returns 12 hex digits of a SHA-256.
     """
     settings = {
         "version": 1,
         "metrics": sorted(
-            [m.name, m.column, m.test, m.reference, m.transform, m.min_effect] for m in cfg.metrics
+            [m.name, m.column, m.test, m.reference, m.transform, m.min_effect]
+            + ([list(m.adjust_for)] if m.adjust_for else [])  # hashes of jobs without adjust_for unchanged
+            for m in cfg.metrics
         ),
         "fdr": [cfg.fdr.method, cfg.fdr.level, cfg.fdr.pairs],
         "sampling": [cfg.sampling.mode, cfg.sampling.cap, cfg.sampling.seed],
@@ -351,7 +354,8 @@ _TOP_KEYS = ("job", "source", "period", "timezone", "metrics", "fdr", "history",
              "schedule", "quality", "posthoc", "alpha", "compute", "sampling", "confirm", "power",
              "scheduling", "report")
 _SOURCE_KEYS = ("url", "table", "query", "time_column", "segment_column", "naive_time")
-_METRIC_KEYS = ("column", "name", "test", "reference", "transform", "unit", "decimals", "min_effect", "label")
+_METRIC_KEYS = ("column", "name", "test", "reference", "transform", "unit", "decimals", "min_effect", "label",
+                "adjust_for")
 
 _MISSING: Any = type("_Missing", (), {"__repr__": lambda self: "nothing"})()
 _REQUIRED: Any = type("_Required", (), {})()
@@ -566,8 +570,37 @@ def _metrics(r: _Reader, top: dict, source: SourceConfig) -> tuple[MetricConfig,
                                 "an omega squared from 0 up to 1, e.g. 0.01 small, 0.06 medium, 0.14 large",
                                 default=None),
             label=r.text(spec, "label", path, "a display label", default=None),
+            adjust_for=_adjust_for(r, spec, path, column, source),
         ))
+        if metrics[-1].adjust_for:
+            if metrics[-1].reference is None:
+                r.fail(f"{path}.adjust_for", "needs a reference segment to measure the adjusted gaps against",
+                       list(metrics[-1].adjust_for), f"also set {path}.reference, e.g. reference: Basic")
+            if metrics[-1].test == "kruskal":
+                r.fail(f"{path}.test", "cannot be adjusted for strata (a rank test has no additive model)",
+                       "kruskal", "anova (equal spreads), welch (HC3 covariance) or auto with adjust_for")
     return tuple(metrics)
+
+
+def _adjust_for(r: _Reader, spec: dict, path: str, column: str, source: SourceConfig) -> tuple[str, ...]:
+    """``metrics[i].adjust_for``: distinct categorical columns, none of them the metric, segment or time column."""
+    if spec.get("adjust_for") is None:
+        return ()
+    accepted = "a list of categorical column names, e.g. [household_size, region]"
+    if isinstance(spec["adjust_for"], str):
+        r.fail(f"{path}.adjust_for", "must be a list", spec["adjust_for"], f"{accepted} (brackets even for one)")
+    names = r.strings(spec, "adjust_for", path, accepted)
+    seen: dict[str, int] = {}
+    for index, name in enumerate(names):
+        where = f"{path}.adjust_for[{index}]"
+        for other, key in ((source.segment_column, "source.segment_column"),
+                           (source.time_column, "source.time_column"), (column, f"{path}.column")):
+            if name.casefold() == other.casefold():
+                r.fail(where, f"is {key}; adjust for another column", name, accepted)
+        if name.casefold() in seen:
+            r.fail(where, f"repeats {path}.adjust_for[{seen[name.casefold()]}]", name, "each column once")
+        seen[name.casefold()] = index
+    return names
 
 
 def _alerts(r: _Reader, top: dict) -> tuple[AlertConfig, ...]:

@@ -410,7 +410,7 @@ def _segment_emerged(r: MetricResult, seg: str, flag: str, seg_word: str, unit: 
                 "emerged", r.metric, seg,
                 f"{seg_word} {seg}: the gap to the reference {seg_word} {r.reference} on {r.metric} is now "
                 f"{gap}{tail}.",
-                {"flag": flag, "mean": row.mean, "reference": r.reference, **extra})
+                {"flag": flag, "mean": row.mean, "reference": r.reference, **_adjusted_detail(r, seg), **extra})
         where = f"{word} the reference {seg_word} {r.reference}"
         count = ""
     else:
@@ -436,7 +436,7 @@ def _segment_cleared(r: MetricResult, seg: str, flag: str, seg_word: str, run: R
             "cleared", r.metric, seg,
             f"{seg_word} {seg}: the gap to the reference {seg_word} {r.reference} on {r.metric} is no longer "
             f"significant{now}{tail}.",
-            {"previous_flag": flag, "reference": r.reference, **extra})
+            {"previous_flag": flag, "reference": r.reference, **_adjusted_detail(r, seg), **extra})
     return Event(
         "cleared", r.metric, seg,
         f"{seg_word} {seg} no longer stands {word} the rest on {r.metric}{tail}.",
@@ -452,6 +452,16 @@ def _gap_text(r: MetricResult, seg: str, unit: str | None, decimals: int | None,
         return None
     rows = {s.segment: s for s in r.segments}
     test = f"; {r.posthoc}, adjusted p = {_p(pair.p_adj)}" if with_test and r.posthoc else ""
+    adj = r.adjustment.gap(seg) if r.adjustment is not None else None
+    if adj is not None:  # a gap within strata: the raw gap beside it, not the plain means
+        within = f"within {', '.join(r.adjustment.columns)}"
+        if pair.log_scale:
+            pct = [100 * (math.exp(x) - 1) if math.isfinite(x) else math.nan
+                   for x in (pair.diff, pair.ci_low, pair.ci_high, adj.raw_gap)]
+            return (f"{pct[0]:+.1f}% [{pct[1]:+.1f}%, {pct[2]:+.1f}%] {within} (raw gap {pct[3]:+.1f}%{test})")
+        return (f"{_signed(pair.diff, unit, decimals)} [{_signed(pair.ci_low, None, decimals)}, "
+                f"{_signed(pair.ci_high, None, decimals)}] {within} "
+                f"(raw gap {_signed(adj.raw_gap, unit, decimals)}{test})")
     if pair.log_scale:
         pct = [100 * (math.exp(x) - 1) if math.isfinite(x) else math.nan
                for x in (pair.diff, pair.ci_low, pair.ci_high)]
@@ -468,6 +478,18 @@ def _gap_text(r: MetricResult, seg: str, unit: str | None, decimals: int | None,
     share = f", {100 * pair.diff / ref_mean:+.1f}% of {r.reference}'s mean" if ref_mean else ""
     return (f"{_signed(pair.diff, unit, decimals)} [{_signed(pair.ci_low, None, decimals)}, "
             f"{_signed(pair.ci_high, None, decimals)}] ({'mean difference' + share}{test})")
+
+
+def _adjusted_detail(r: MetricResult, seg: str) -> dict[str, Any]:
+    """The adjusted gap's numbers for an event's detail (empty without ``adjust_for``)."""
+    adj = r.adjustment.gap(seg) if r.adjustment is not None else None
+    if adj is None:
+        return {}
+    out = adj.to_json()
+    out.pop("segment", None)
+    out.pop("reference", None)
+    out.pop("significant", None)
+    return {"adjusted_for": list(r.adjustment.columns), **out}
 
 
 def _excluded(r: MetricResult) -> int:

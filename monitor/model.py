@@ -38,6 +38,7 @@ from .errors import HistoryError
 
 if TYPE_CHECKING:  # type names only: these modules sit above this one
     from .config import JobConfig, MetricConfig
+    from .stats.cells import CellData
     from .stats.summary import Moments
 
 #: The newest format of stored JSON this release writes and reads.
@@ -152,6 +153,7 @@ class MetricInput:
     segments: tuple[SegmentInput, ...]
     quality: QualityCounts = QualityCounts()
     sample_size: int | None = None  # set when values are a sample, not all values
+    cells: CellData | None = None  # per-(segment, stratum) summaries when the metric has adjust_for
 
     def to_json(self) -> dict[str, Any]:
         return {"metric": self.metric.name, "segments": [s.to_json() for s in self.segments],
@@ -345,6 +347,129 @@ class PairRow:
 
 
 @dataclass(frozen=True)
+class TermRow:
+    """The test of one term of an adjusted model (``adjust_for``): F on ``df`` = (q, residual df)."""
+
+    term: str
+    statistic: float
+    df: tuple[float, float]
+    p_value: float
+    ss: float = math.nan  # Type II sum of squares (NaN for HC3 Wald tests)
+
+    def to_json(self) -> dict[str, Any]:
+        return {"term": self.term, "statistic": _num(self.statistic), "df": [_num(d) for d in self.df],
+                "p_value": _num(self.p_value), "ss": _num(self.ss)}
+
+    @classmethod
+    def from_json(cls, data: Mapping[str, Any]) -> "TermRow":
+        df = tuple(_nan(d) for d in data.get("df") or (None, None))
+        return cls(data["term"], _nan(data.get("statistic")), (df[0], df[1]), _nan(data.get("p_value")),
+                   _nan(data.get("ss")))
+
+
+@dataclass(frozen=True)
+class GapRow:
+    """One segment's gap to the reference within strata, with the raw gap beside it.
+
+    ``gap`` (and ``raw_gap``) are in the metric's analysis units: a difference of means, or of
+    mean logs under ``transform: log`` (then also read as ratios and per cent).
+    """
+
+    segment: str
+    reference: str
+    n: int
+    gap: float
+    ci_low: float
+    ci_high: float
+    p_adj: float
+    raw_gap: float
+    explained: float
+    log_scale: bool = False
+    note: str | None = None
+
+    def to_json(self, significant: bool = False) -> dict[str, Any]:
+        out: dict[str, Any] = {
+            "segment": self.segment, "reference": self.reference, "n": self.n, "gap": _num(self.gap),
+            "ci_low": _num(self.ci_low), "ci_high": _num(self.ci_high), "p_adj": _num(self.p_adj),
+            "significant": significant, "raw_gap": _num(self.raw_gap), "explained": _num(self.explained),
+        }
+        if self.log_scale:
+            for key, value in (("ratio", self.gap), ("ratio_low", self.ci_low), ("ratio_high", self.ci_high),
+                               ("raw_ratio", self.raw_gap)):
+                out[key] = _num(_exp(value))
+            for key, value in (("percent", self.gap), ("percent_low", self.ci_low),
+                               ("percent_high", self.ci_high), ("raw_percent", self.raw_gap)):
+                out[key] = _num(100.0 * (_exp(value) - 1.0))
+        if self.note:
+            out["note"] = self.note
+        return out
+
+    @classmethod
+    def from_json(cls, data: Mapping[str, Any]) -> "GapRow":
+        return cls(data["segment"], data["reference"], int(data.get("n") or 0), _nan(data.get("gap")),
+                   _nan(data.get("ci_low")), _nan(data.get("ci_high")), _nan(data.get("p_adj")),
+                   _nan(data.get("raw_gap")), _nan(data.get("explained")), "ratio" in data, data.get("note"))
+
+
+@dataclass(frozen=True)
+class Adjustment:
+    """A metric compared within strata (``adjust_for``), and the raw comparison it replaced.
+
+    The metric's ``statistic``/``df``/``p_value`` and ``pairs`` are the adjusted ones; the
+    ``raw_*`` fields keep the plain comparison of the same period beside them.
+    """
+
+    columns: tuple[str, ...]
+    covariance: str
+    strata_tests: tuple[TermRow, ...]
+    additivity: TermRow
+    gaps: tuple[GapRow, ...]
+    critical_value: float
+    cells: int
+    missing: int
+    raw_method: str
+    raw_statistic: float
+    raw_df: tuple[float, ...]
+    raw_p_value: float
+    raw_pairs: tuple[PairRow, ...] = ()
+    note: str | None = None
+
+    def gap(self, segment: str) -> GapRow | None:
+        return next((g for g in self.gaps if g.segment == segment), None)
+
+    def to_json(self, significant: Mapping[str, bool] | None = None) -> dict[str, Any]:
+        significant = significant or {}
+        return {
+            "columns": list(self.columns),
+            "model": "additive: segment + " + " + ".join(self.columns),
+            "covariance": self.covariance,
+            "strata_tests": [t.to_json() for t in self.strata_tests],
+            "additivity": self.additivity.to_json(),
+            "gaps": [g.to_json(significant.get(g.segment, False)) for g in self.gaps],
+            "critical_value": _num(self.critical_value),
+            "cells": self.cells,
+            "missing_strata": self.missing,
+            "note": self.note,
+            "raw": {"method": self.raw_method, "statistic": _num(self.raw_statistic),
+                    "df": [_num(d) for d in self.raw_df], "p_value": _num(self.raw_p_value),
+                    "pairs": [p.to_json() for p in self.raw_pairs]},
+        }
+
+    @classmethod
+    def from_json(cls, data: Mapping[str, Any]) -> "Adjustment":
+        raw = data.get("raw") or {}
+        return cls(
+            tuple(data.get("columns") or ()), data.get("covariance") or "classic",
+            tuple(TermRow.from_json(t) for t in data.get("strata_tests") or ()),
+            TermRow.from_json(data.get("additivity") or {"term": "additivity"}),
+            tuple(GapRow.from_json(g) for g in data.get("gaps") or ()), _nan(data.get("critical_value")),
+            int(data.get("cells") or 0), int(data.get("missing_strata") or 0), raw.get("method") or "",
+            _nan(raw.get("statistic")), tuple(_nan(d) for d in raw.get("df") or ()), _nan(raw.get("p_value")),
+            tuple(PairRow.from_json(p) for p in raw.get("pairs") or ()), data.get("note"),
+        )
+
+
+@dataclass(frozen=True)
 class MetricResult:
     """The verdict for one metric in one period (the contract's ``metrics[]`` entry)."""
 
@@ -372,6 +497,7 @@ class MetricResult:
     relevant_checks: tuple[str, ...] = ()
     sensitivity: Sensitivity | None = None
     pair_level: float = math.nan  # the level pairs and flags were read at
+    adjustment: Adjustment | None = None  # adjust_for: the additive model and the raw comparison beside it
 
     @property
     def computed(self) -> bool:
@@ -417,6 +543,8 @@ class MetricResult:
             out["unit"] = self.unit
         if self.sample_size is not None:
             out["sample_size"] = self.sample_size
+        if self.adjustment is not None:
+            out["adjustment"] = self.adjustment.to_json({p.a: p.significant for p in self.pairs})
         if stored:
             out["format"] = FORMAT
             out["requested"] = self.requested
@@ -450,6 +578,7 @@ class MetricResult:
             relevant_checks=tuple(k for k, v in (data.get("assumptions") or {}).items() if v.get("watched")),
             sensitivity=Sensitivity.from_json(sens) if sens else None,
             pair_level=_nan(data.get("pair_level")),
+            adjustment=Adjustment.from_json(data["adjustment"]) if data.get("adjustment") else None,
         )
 
 

@@ -39,7 +39,7 @@ from __future__ import annotations
 
 import logging
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import datetime, timezone
 from decimal import Decimal
 from typing import TYPE_CHECKING, Any, Mapping, Sequence
@@ -62,6 +62,8 @@ from ..redact import one_line, redact
 from ..model import MetricInput, QualityCounts, SegmentInput
 from ..periods import Period
 from ..stats.summary import Moments
+from ..stats.cells import CellData
+from . import cells as cells_sql
 from . import pushdown
 from .pushdown import Aggregate, MetricPlan, Shift
 from .sampling import SamplePlan, plan_sample, smallest, thresholds
@@ -162,6 +164,8 @@ class Source:
         available = [c.name for c in rel.columns]
         wanted = [("time_column", cfg.time_column), ("segment_column", cfg.segment_column)]
         wanted += [(f"metrics[{i}].column", m.column) for i, m in enumerate(self.job.metrics)]
+        wanted += [(f"metrics[{i}].adjust_for[{j}]", a) for i, m in enumerate(self.job.metrics)
+                   for j, a in enumerate(m.adjust_for)]
         for key, col in wanted:
             if col not in rel.c:
                 key_path = key if key.startswith("metrics") else f"source.{key}"
@@ -170,6 +174,40 @@ class Source:
                     f"(columns there: {', '.join(available)})"
                 )
         return rel
+
+    def check_references(self, limit: int = 10_000) -> None:
+        """Check every metric's ``reference`` against the segment values in the source.
+
+        Reads ``SELECT DISTINCT segment`` (at most ``limit`` values). A reference that is not
+        among them raises :class:`ConfigError` naming the key, the values there and, when one
+        differs only in case or spacing, that value.
+        """
+        refs = [(i, m.reference) for i, m in enumerate(self.job.metrics) if m.reference is not None]
+        if not refs:
+            return
+        rel = self._relation()
+        seg = rel.c[self.cfg.segment_column]
+        stmt = sa.select(seg).where(seg.is_not(None)).distinct().limit(limit + 1)
+        try:
+            with self._connect() as conn:
+                values = sorted({str(v) for (v,) in conn.execute(stmt)})
+        except SQLAlchemyError as exc:
+            raise SourceError(f"{self.job.path}: source: reading the values of {self.cfg.segment_column!r} "
+                              f"failed: {one_line(exc)}") from exc
+        if len(values) > limit:
+            log.info("job %s: more than %d segment values; references not checked", self.job.job, limit)
+            return
+        noun = self.cfg.segment_column
+        for i, ref in refs:
+            if ref in values:
+                continue
+            shown = ", ".join(values[:20]) + (f", ... ({len(values)} in all)" if len(values) > 20 else "")
+            close = [v for v in values if "".join(v.split()).casefold() == "".join(ref.split()).casefold()]
+            hint = f"; did you mean {close[0]!r}?" if close else ""
+            raise ConfigError(
+                f"{self.job.path}: metrics[{i}].reference: no {noun} named {ref!r}; "
+                f"{noun}s there: {shown or 'none'}{hint}"
+            )
 
     def describe(self) -> SourceInfo:
         """Reach the source, check the server version and the columns, and report them."""
@@ -205,8 +243,11 @@ class Source:
                 pushdown.aggregate_query(rel, seg_key, plans, where, shifts, traits).limit(0),
                 pushdown.values_query(rel, seg_key, plans, where, traits, hashed=hashed).limit(0),
             ]
+            statements += [cells_sql.cell_query(rel, seg_key, p, p.metric.adjust_for, where, shifts[p.position],
+                                                traits).limit(0) for p in plans if p.metric.adjust_for]
         else:
             cols = [rel.c[seg_key], *[rel.c[m.column] for m in self.job.metrics]]
+            cols += [rel.c[a] for a in dict.fromkeys(a for m in self.job.metrics for a in m.adjust_for)]
             statements = [sa.select(*cols).where(where).limit(0)]
         try:
             with self._connect() as conn:
@@ -259,18 +300,30 @@ class Source:
             # the driver's own value: SQLAlchemy's MySQL DOUBLE type would round to 10 decimals
             cols.append(sa.type_coerce(rel.c[m.column], sa.types.NullType()).label(f"__m{i}"))
             names.append(f"__m{i}")
+        strata = list(dict.fromkeys(a for m in self.job.metrics for a in m.adjust_for))
+        cols += [rel.c[a].label(f"__a{j}") for j, a in enumerate(strata)]
         stmt = sa.select(*cols).where(self.window_clause(period))
         import pandas as pd  # only for compute: local (a push-down run does without it)
 
         try:
             with self._connect() as conn:
                 result = conn.execute(stmt)
-                frame = pd.DataFrame(result.fetchall(), columns=["__segment", *names], dtype=object)
+                frame = pd.DataFrame(result.fetchall(),
+                                     columns=["__segment", *names, *[f"__a{j}" for j in range(len(strata))]],
+                                     dtype=object)
         except SQLAlchemyError as exc:
             raise SourceError(
                 f"{self.job.path}: reading period {period.ident} from {redact(self.cfg.url)} failed: {one_line(exc)}"
             ) from exc
-        return summarise_frame(frame, self.job.metrics, names)
+        data = summarise_frame(frame, self.job.metrics, names)
+        if not strata:
+            return data
+        inputs = tuple(
+            replace(inp, cells=_local_cells(frame, m, name, [f"__a{strata.index(a)}" for a in m.adjust_for]))
+            if m.adjust_for else inp
+            for inp, m, name in zip(data.metrics, self.job.metrics, names)
+        )
+        return replace(data, metrics=inputs)
 
     def _fetch_pushdown(self, period: Period, plans: tuple[MetricPlan, ...], traits: EngineTraits) -> PeriodData:
         rel = self._relation()
@@ -287,6 +340,8 @@ class Source:
                     shifts = self._shifts(conn, rel, plans, where, traits)
                     step = "the aggregate query"
                     agg = self._aggregate(conn, rel, plans, where, shifts, traits, period)
+                    step = "the per-stratum query"
+                    cells = self._cells(conn, rel, plans, where, traits, agg, shifts)
                     step = "the values query"
                     plan = plan_sample(sampling.mode, sampling.cap, sampling.seed, agg.rows)
                     values = self._values(conn, rel, plans, where, traits, agg, plan)
@@ -306,11 +361,28 @@ class Source:
                 vals = _transform(values[label][p.position], p.metric.transform)
                 segs.append(SegmentInput(label, summary.moments, vals))
             size = sum(len(s.values) for s in segs) if plan.any else None
-            inputs.append(MetricInput(p.metric, tuple(segs), quality, sample_size=size))
+            inputs.append(MetricInput(p.metric, tuple(segs), quality, sample_size=size, cells=cells.get(p.position)))
         log.debug("job %s: %s pushed down (%d rows, %d segments, %s)", self.job.job, period.ident,
                   agg.total_rows, len(agg.labels), "sampled values" if plan.any else "all values")
         return PeriodData(tuple(inputs), rows=agg.total_rows, null_segment_rows=agg.null_segment_rows,
                           segments=agg.labels, compute="pushdown", sampled=plan.any)
+
+    def _cells(self, conn: sa.Connection, rel: sa.FromClause, plans: Sequence[MetricPlan],
+               where: sa.ColumnElement[bool], traits: EngineTraits, agg: Aggregate,
+               shifts: Mapping[int, Shift]) -> dict[int, CellData]:
+        """Per-(segment, stratum) sums of the metrics with ``adjust_for`` (:mod:`monitor.source.cells`),
+        each segment's values shifted by its own mean from the first pass."""
+        out: dict[int, CellData] = {}
+        for p in plans:
+            if not p.metric.adjust_for:
+                continue
+            per = agg.metrics[p.position]
+            means = {raw: float(per[label].moments.mean) for label in agg.labels if per[label].moments.n
+                     for raw in agg.raw[label]}
+            shift = shifts[p.position].per_segment(means)
+            stmt = cells_sql.cell_query(rel, self.cfg.segment_column, p, p.metric.adjust_for, where, shift, traits)
+            out[p.position] = cells_sql.read_cells(conn.execute(stmt).mappings(), p, p.metric.adjust_for, shift)
+        return out
 
     def _aggregate(self, conn: sa.Connection, rel: sa.FromClause, plans: Sequence[MetricPlan],
                    where: sa.ColumnElement[bool], shifts: Mapping[int, Shift], traits: EngineTraits,
@@ -610,6 +682,24 @@ def _transform(values: np.ndarray, transform: str) -> np.ndarray:
     if transform == "log1p":
         return np.log1p(values)
     return values
+
+
+def _local_cells(frame: pd.DataFrame, m: MetricConfig, name: str, strata: Sequence[str]) -> CellData:
+    """The per-(segment, stratum) cells of ``compute: local``, by the usable-value rule of
+    :func:`summarise_frame`."""
+    import pandas as pd
+
+    frame = frame[frame["__segment"].notna()]
+    arr = pd.to_numeric(frame[name], errors="coerce").astype(float).to_numpy(dtype=float)
+    ok = np.isfinite(arr)
+    if m.transform == "log":
+        ok &= arr > 0
+    elif m.transform == "log1p":
+        ok &= arr > -1
+    with np.errstate(all="ignore"):
+        values = _transform(np.where(ok, arr, 1.0), m.transform)
+    return cells_sql.cells_from_frame(frame["__segment"].astype(str).to_numpy(), values, ok,
+                                      [frame[c].to_numpy(dtype=object) for c in strata], m.adjust_for)
 
 
 def summarise_frame(frame: pd.DataFrame, metrics: Sequence[MetricConfig], names: Sequence[str]) -> PeriodData:

@@ -166,7 +166,8 @@ class Gap:
     ci_low, ci_high : float
         Simultaneous confidence interval for ``adjusted`` at the result's ``confidence``.
     raw : float
-        Difference of the two segments' plain means (composition not accounted for).
+        Difference of the two segments' plain means over the records in the model (composition not
+        accounted for).
     explained : float
         ``(raw - adjusted) / raw``: the share of the raw gap that the strata account for (1 =
         all of it, 0 = none, negative = adjustment widens the gap); NaN if ``raw == 0``. It is
