@@ -19,7 +19,9 @@ import importlib.util
 import io
 import json
 import math
+import re
 import sqlite3
+import subprocess
 import sys
 from pathlib import Path
 
@@ -257,8 +259,10 @@ def pricing(tmp_path_factory):
     cfg["alerts"] = [{"type": "log", "path": str(folder / "alerts.jsonl")}]
     path = folder / "within.yaml"
     path.write_text(yaml.safe_dump(cfg), encoding="utf-8")
-    code, _ = _cli(["backfill", str(path), "--from", "2025-12", "--to", "2026-03"])
+    code, _ = _cli(["backfill", str(path), "--from", "2025-12", "--to", "2026-04"])
     assert code == 0
+    for month in ("2026-08", "2026-12"):
+        assert _cli(["run", str(path), "--period", month])[0] == 0
     return folder, path, db
 
 
@@ -286,3 +290,32 @@ def test_pricing_saver_gap_is_composition(pricing):
     premium = [a for a in alerts if a["segment"] == "Premium" and a["kind"] == "emerged"]
     assert premium and premium[0]["detail"]["adjusted_for"] == ["household_size"]
     assert math.isfinite(premium[0]["detail"]["percent"]) and "within household_size" in premium[0]["message"]
+
+
+def _md_blocks(text: str, lang: str) -> list[str]:
+    return re.findall(rf"```{lang}\n(.*?)```", text, flags=re.S)
+
+
+def test_pricing_docs_table_and_printer(pricing):
+    folder, path, db = pricing
+    text = (ROOT / "docs" / "pricing.md").read_text(encoding="utf-8")
+    code, out = _cli(["history", str(path), "--json"])
+    assert code == 0
+    stored = {e["period"]: e for e in json.loads(out)["metrics"]}
+    pattern = r"^\| (20\d\d-\d\d) \| ([^|]+) \| ([^|]+) \| ([^|]+) \| none \|$"
+    rows = re.findall(pattern, text, flags=re.M)
+    readme_rows = re.findall(pattern, (ROOT / "README.md").read_text(encoding="utf-8"), flags=re.M)
+    assert len(rows) == 7 and len(readme_rows) == 4 and set(readme_rows) <= set(rows)
+    for month, raw, within, share in rows:
+        gap = next(g for g in stored[month]["adjustment"]["gaps"] if g["segment"] == "Saver")
+        assert raw.strip() == f"{gap['raw_percent']:+.1f}%"
+        assert within.strip() == f"{gap['percent']:+.1f}% [{gap['percent_low']:+.1f}%, {gap['percent_high']:+.1f}%]"
+        assert share.strip() == f"{100 * gap['explained']:.0f}%"
+        assert gap["percent_low"] < 0 < gap["percent_high"] or month < "2026-01"
+    # the second python block of the walk-through, on this job's 2026-03 document
+    code_block = _md_blocks(text, "python")[1]
+    doc = _run_json(path)
+    result = subprocess.run([sys.executable, "-c", code_block], input=json.dumps(doc), capture_output=True,
+                            text=True, timeout=60, check=True)
+    (quoted,) = re.findall(r"`(2026-03 household_income: Saver vs Basic raw [^`]+)`", text)
+    assert quoted in result.stdout.splitlines()

@@ -630,6 +630,8 @@ def test_docs_paths_and_commands_exist():
         assert (ROOT / path).exists(), path
     for command in re.findall(r"^ {4}(segwatch \w+ [^\n]+)$", text, flags=re.M):
         assert "configs/pricing.yaml" in command, command
+    for command in re.findall(r"^(segwatch \w+ [^\n]+)$", text, flags=re.M):  # in fenced blocks
+        assert re.search(r"configs/pricing(-within-size)?\.yaml", command), command
     assert "## Second sample" not in text  # the sample's table lives in sample_db/README.md
     readme = SAMPLE_README.read_text(encoding="utf-8")
     assert "# Second sample: households on a utility's plan tiers" in readme
@@ -638,9 +640,11 @@ def test_docs_paths_and_commands_exist():
 
 
 def test_docs_yaml_matches_the_job():
-    metrics_block, stratum_block = _blocks(DOCS.read_text(encoding="utf-8"), "yaml")
+    metrics_block, within_block, stratum_block = _blocks(DOCS.read_text(encoding="utf-8"), "yaml")
     config = yaml.safe_load(CONFIG.read_text(encoding="utf-8"))
     assert yaml.safe_load(metrics_block)["metrics"] == config["metrics"]
+    within = yaml.safe_load((ROOT / "configs" / "pricing-within-size.yaml").read_text(encoding="utf-8"))
+    assert yaml.safe_load(within_block)["metrics"] == within["metrics"]
     stratum = yaml.safe_load(stratum_block)
     merged = {**config, **stratum}
     parse_config(merged, CONFIG)  # reference: the config rules of CONTRACT.md (raises when invalid)
@@ -649,7 +653,7 @@ def test_docs_yaml_matches_the_job():
 
 def test_docs_gap_printer(backfill):
     text = DOCS.read_text(encoding="utf-8")
-    (code,) = _blocks(text, "python")
+    code = _blocks(text, "python")[0]  # the second one reads adjusted gaps (tests/test_adjust_for.py)
     result = subprocess.run([sys.executable, "-c", code], input=json.dumps(backfill["2026-03"]),
                             capture_output=True, text=True, timeout=60, check=True)
     (quoted,) = re.findall(r"`(2026-03 household_income: Saver vs Basic [^`]+)`", text)
@@ -664,7 +668,7 @@ def test_docs_gap_printer(backfill):
 
 def test_docs_composition_check(db, tmp_path):
     """The walk-through's claim: within single-person households Saver's income gap is gone."""
-    (_, stratum_block) = _blocks(DOCS.read_text(encoding="utf-8"), "yaml")
+    stratum_block = _blocks(DOCS.read_text(encoding="utf-8"), "yaml")[-1]
     stratum = yaml.safe_load(stratum_block)
     cfg = _job_copy(tmp_path, db, "single.yaml", job=stratum["job"],
                     source={**stratum["source"]})
