@@ -319,3 +319,41 @@ def test_pricing_docs_table_and_printer(pricing):
                             text=True, timeout=60, check=True)
     (quoted,) = re.findall(r"`(2026-03 household_income: Saver vs Basic raw [^`]+)`", text)
     assert quoted in result.stdout.splitlines()
+
+
+# ---------------------------------------------------------------------------
+# every engine: the pushed-down cells equal the rows summarised here
+# ---------------------------------------------------------------------------
+@pytest.mark.parametrize("engine", ["sqlite", "duckdb", "postgresql", "mariadb"])
+def test_cells_pushed_down_equal_local_on_every_engine(engine, tmp_path):
+    from dataclasses import replace as dc_replace
+
+    from monitor.source import Source
+    from tests.test_engines import PERIOD, create_table, job_config, make_target, parity_rows
+
+    target = make_target(engine, tmp_path)
+    try:
+        table = create_table(target, "adj_cells", parity_rows(engine))
+        metrics = [
+            {"column": "x", "reference": "north", "adjust_for": ["cnt"]},
+            {"name": "x_log", "column": "x", "transform": "log", "reference": "north", "adjust_for": ["cnt"]},
+            {"column": "amount", "reference": "north", "adjust_for": ["cnt"]},  # exact decimals where possible
+        ]
+        cfg = job_config(target, table, tmp_path, metrics=metrics)
+        push = Source(cfg).fetch(PERIOD)
+        local = Source(dc_replace(cfg, compute="local")).fetch(PERIOD)  # pandas/numpy on the rows
+        assert push.compute == "pushdown"
+        for p, q in zip(push.metrics, local.metrics):
+            pc = {(c.segment, c.levels): c for c in p.cells.cells}
+            qc = {(c.segment, c.levels): c for c in q.cells.cells}
+            assert pc.keys() == qc.keys() and len(pc) > 10
+            for key, c in pc.items():
+                d = qc[key]
+                assert c.n == d.n
+                assert c.mean + c.mean_residual == pytest.approx(d.mean + d.mean_residual, rel=1e-12, abs=1e-12)
+                assert c.m2 == pytest.approx(d.m2, rel=1e-9, abs=1e-9)
+            assert p.cells.missing == q.cells.missing >= 1  # the row whose cnt is NULL
+            # the cells and the values left out add up to the per-segment query's counts
+            assert sum(c.n for c in p.cells.cells) + p.cells.missing == sum(s.moments.n for s in p.segments)
+    finally:
+        target.close()
