@@ -585,6 +585,28 @@ def _metric_row(m: dict[str, Any]) -> list[str]:
 METRIC_HEADER = ["metric", "method", "statistic", "p", "q", "sig", "effect", "stands apart", "checks failing"]
 
 
+def _adjusted_lines(m: dict[str, Any]) -> str:
+    """The adjusted gaps of one metric beside the raw ones (``adjust_for``)."""
+    adj = m["adjustment"]
+    raw = adj.get("raw") or {}
+    lines = [f"\n{clean(m['metric'])} within {clean(', '.join(adj['columns']))} (raw: {raw.get('method')}, "
+             f"p {_p(raw.get('p_value'))}); simultaneous intervals:"]
+    rows = []
+    for g in adj["gaps"]:
+        if "percent" in g:
+            fmt = [_pct(g.get(k)) for k in ("raw_percent", "percent", "percent_low", "percent_high")]
+        else:
+            fmt = [_g(g.get(k), 4) for k in ("raw_gap", "gap", "ci_low", "ci_high")]
+        explained = "-" if g.get("explained") is None else f"{100 * g['explained']:.0f}%"
+        rows.append([f"{clean(g['segment'])} vs {clean(g['reference'])}", fmt[0], f"{fmt[1]} [{fmt[2]}, {fmt[3]}]",
+                     explained, "yes" if g.get("significant") else "no"])
+    return "\n".join(lines) + "\n" + _table(["gap", "raw", "adjusted", "explained", "sig"], rows)
+
+
+def _pct(x: Any) -> str:
+    return "n/a" if x is None else f"{x:+.1f}%"
+
+
 def render_report(report: PeriodReport) -> str:
     doc = report.to_json()
     p = report.period
@@ -593,6 +615,7 @@ def render_report(report: PeriodReport) -> str:
     if report.rows == 0:
         return head + f"{report.note or 'the source had no rows in this period'}\n"
     body = _table(METRIC_HEADER, [_metric_row(m) for m in doc["metrics"]])
+    body += "".join(_adjusted_lines(m) for m in doc["metrics"] if m.get("adjustment"))
     notes = [f"  {clean(m['metric'])}: {clean(m['note'])}" for m in doc["metrics"] if m.get("note")]
     if notes:
         body += "\nnotes:\n" + "\n".join(notes) + "\n"

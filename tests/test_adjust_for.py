@@ -357,3 +357,14 @@ def test_cells_pushed_down_equal_local_on_every_engine(engine, tmp_path):
             assert sum(c.n for c in p.cells.cells) + p.cells.missing == sum(s.moments.n for s in p.segments)
     finally:
         target.close()
+
+
+def test_run_text_shows_raw_and_adjusted_gaps(pricing):
+    folder, path, db = pricing
+    doc = _run_json(path)
+    gap = next(g for g in doc["metrics"][0]["adjustment"]["gaps"] if g["segment"] == "Saver")
+    code, out = _cli(["run", str(path), "--period", "2026-03"])
+    assert code == 0 and "household_income within household_size (raw: anova" in out
+    line = next(x for x in out.splitlines() if x.startswith("Saver vs Basic"))
+    assert line.split()[3] == f"{gap['raw_percent']:+.1f}%"
+    assert f"{gap['percent']:+.1f}% [{gap['percent_low']:+.1f}%, {gap['percent_high']:+.1f}%]" in line
