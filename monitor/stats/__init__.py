@@ -20,6 +20,8 @@ from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:  # for type checkers and readers: the submodules reached lazily below
     from monitor.stats import (  # noqa: F401
+        adjusted,
+        cells,
         diagnostics,
         effects,
         evidence,
@@ -36,8 +38,8 @@ if TYPE_CHECKING:  # for type checkers and readers: the submodules reached lazil
     )
 
 #: The submodules reached as attributes of the package (each imported on first access).
-SUBMODULES = ("diagnostics", "effects", "evidence", "flags", "multiplicity", "omnibus", "posthoc", "power",
-              "proportions", "stepdown", "studentized", "summary", "warnings")
+SUBMODULES = ("adjusted", "cells", "diagnostics", "effects", "evidence", "flags", "multiplicity", "omnibus",
+              "posthoc", "power", "proportions", "stepdown", "studentized", "summary", "warnings")
 
 #: The submodules a period's analysis uses (what :func:`load` imports).
 ANALYSIS_MODULES = ("diagnostics", "effects", "flags", "multiplicity", "omnibus", "posthoc", "power")
