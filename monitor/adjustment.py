@@ -52,7 +52,12 @@ def apply(result: MetricResult, data: MetricInput, job: JobConfig) -> MetricResu
 
     labels = [s.segment for s in result.segments if not s.excluded and s.n > 0]
     cells = [c for c in data.cells.cells if c.segment in labels]
-    covariance = "classic" if result.method == "anova" else "hc3"
+    from . import methods
+
+    # the model follows the test used: equal spreads assumed -> classic, else HC3 (also when
+    # auto picked a rank test, whose adjusted stand-in is the robust model)
+    used = methods.find(result.method)
+    covariance = (used.adjusted_covariance if used is not None else None) or "hc3"
     log_scale = m.transform == "log"
     res = adjusted_comparison(cells, m.reference, columns, segments=labels, covariance=covariance,
                               confidence=job.posthoc.confidence, log_scale=log_scale)

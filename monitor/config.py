@@ -576,9 +576,11 @@ def _metrics(r: _Reader, top: dict, source: SourceConfig) -> tuple[MetricConfig,
             if metrics[-1].reference is None:
                 r.fail(f"{path}.adjust_for", "needs a reference segment to measure the adjusted gaps against",
                        list(metrics[-1].adjust_for), f"also set {path}.reference, e.g. reference: Basic")
-            if metrics[-1].test == "kruskal":
+            test = metrics[-1].test
+            if test != methods.AUTO and methods.get(test).adjusted_covariance is None:
+                ok = [n for n in methods.names() if methods.get(n).adjusted_covariance is not None]
                 r.fail(f"{path}.test", "cannot be adjusted for strata (a rank test has no additive model)",
-                       "kruskal", "anova (equal spreads), welch (HC3 covariance) or auto with adjust_for")
+                       test, f"{', '.join(ok)} or {methods.AUTO} with adjust_for")
     return tuple(metrics)
 
 

@@ -42,6 +42,7 @@ class FisherAnova(TestMethod):
     df_count = 2  # (k - 1, N - k)
     posthoc = Family("tukey-kramer", "Tukey-Kramer")
     many_to_one = Family("dunnett", "Dunnett")
+    adjusted_covariance = "classic"  # with adjust_for: one spread in every cell
 
     def omnibus(self, segs: Segments) -> OmnibusResult:
         return stats.omnibus.fisher_anova(segs.groups)

@@ -118,6 +118,11 @@ class TestMethod(ABC):
         All pairs, read when no ``reference`` is set.
     many_to_one : Family
         The pairs of every segment with the ``reference`` segment.
+    adjusted_covariance : str or None
+        With ``adjust_for``: the covariance of the additive model that replaces this test
+        (``'classic'`` when the test assumes equal spreads, ``'hc3'`` otherwise; see
+        :mod:`monitor.stats.adjusted`); None when the test cannot be asked for with
+        ``adjust_for`` (a rank test has no additive model).
     """
 
     __test__ = False  # not a pytest test class, whatever its name
@@ -131,6 +136,7 @@ class TestMethod(ABC):
     without_values_reason: ClassVar[str] = "values were not available"
     posthoc: ClassVar[Family]
     many_to_one: ClassVar[Family]
+    adjusted_covariance: ClassVar[str | None] = "hc3"
 
     # ------------------------------------------------------------ the numbers
 

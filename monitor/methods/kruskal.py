@@ -46,6 +46,7 @@ class KruskalWallis(TestMethod):
     without_values_reason = "values were not available for ranks"
     posthoc = _DUNN
     many_to_one = _DUNN
+    adjusted_covariance = None  # not with adjust_for: an additive model needs means, not ranks
 
     def omnibus(self, segs: Segments) -> OmnibusResult:
         return stats.omnibus.kruskal_wallis(_values(segs))
