@@ -630,8 +630,9 @@ def test_docs_paths_and_commands_exist():
         assert (ROOT / path).exists(), path
     for command in re.findall(r"^ {4}(segwatch \w+ [^\n]+)$", text, flags=re.M):
         assert "configs/pricing.yaml" in command, command
-    for command in re.findall(r"^(segwatch \w+ [^\n]+)$", text, flags=re.M):  # in fenced blocks
-        assert re.search(r"configs/pricing(-within-size)?\.yaml", command), command
+    for block in _blocks(text, "sh"):  # commands in fenced blocks
+        for command in re.findall(r"^(segwatch \w+ [^\n]+)$", block, flags=re.M):
+            assert re.search(r"configs/pricing(-within-size)?\.yaml", command), command
     assert "## Second sample" not in text  # the sample's table lives in sample_db/README.md
     readme = SAMPLE_README.read_text(encoding="utf-8")
     assert "# Second sample: households on a utility's plan tiers" in readme
@@ -656,7 +657,7 @@ def test_docs_gap_printer(backfill):
     code = _blocks(text, "python")[0]  # the second one reads adjusted gaps (tests/test_adjust_for.py)
     result = subprocess.run([sys.executable, "-c", code], input=json.dumps(backfill["2026-03"]),
                             capture_output=True, text=True, timeout=60, check=True)
-    (quoted,) = re.findall(r"`(2026-03 household_income: Saver vs Basic [^`]+)`", text)
+    (quoted,) = re.findall(r"`(2026-03 household_income: Saver vs Basic (?!raw )[^`]+)`", text)
     assert quoted in result.stdout.splitlines()
     # reference: numpy on the JSON's ratio fields, formatted independently of the snippet
     pair = next(p for p in _metric(backfill["2026-03"], "household_income")["pairs"] if p["a"] == "Saver")
