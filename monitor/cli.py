@@ -29,6 +29,8 @@ log = logging.getLogger(__name__)
 #: exit status when stdout is closed before everything was written (``... | head``): 128 + SIGPIPE,
 #: what a shell reports for a program that a closed pipe stopped
 EXIT_PIPE_CLOSED = 141
+#: ``--pairs`` forms (the same as :data:`monitor.model.PAIR_FORMS`, named here so that start-up needs no numpy)
+PAIR_CHOICES = ("top", "significant", "all")
 
 EXAMPLES = {
     "run": "segwatch run configs/demo.yaml --period 2026-W14 --json",
@@ -88,11 +90,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print the result as one JSON document")
     p.add_argument("--dry-run", action="store_true",
                    help="compute and compare with the stored history, but store nothing and send nothing")
+    p.add_argument("--pairs", choices=PAIR_CHOICES, default="top",
+                   help="which post-hoc pairs --json prints per metric: top (default: every pair of up to 24 "
+                        "segments or of a reference metric, else the 20 smallest adjusted p-values; "
+                        "pairs_left_out counts the rest), significant (top plus every significant pair of a "
+                        "significant metric) or all")
 
     p = add("backfill", "run every period in a range, oldest first")
     p.add_argument("--from", dest="first", metavar="ID", required=True, help="first period")
     p.add_argument("--to", dest="last", metavar="ID", required=True, help="last period")
     p.add_argument("--json", action="store_true", help="print one JSON document per period (JSON Lines)")
+    p.add_argument("--pairs", choices=PAIR_CHOICES, default="top", help="which pairs --json prints (as for run)")
 
     p = add("history", "print the stored results over periods")
     p.add_argument("--metric", metavar="NAME", help="one metric, segment by segment")
@@ -243,13 +251,18 @@ def _job(cfg: Any) -> Any:
     return Job(cfg)
 
 
+def dump_run(report: Any, out: TextIO, pairs: str = "top") -> None:
+    """Write one period's ``run --json`` document (``pairs``: one of :data:`PAIR_CHOICES`)."""
+    out.write(json.dumps(report.to_json(pairs), indent=2))
+    out.write("\n")
+
+
 def cmd_run(args: argparse.Namespace, out: TextIO) -> int:
     with _job(_load(args.config)) as job:
         report = job.run(args.period, store=False) if args.dry_run else job.run(args.period)
         empty = _empty_line(job, report, latest=args.period is None) if report.rows == 0 else None
     if args.json:
-        json.dump(report.to_json(), out, indent=2)
-        out.write("\n")
+        dump_run(report, out, args.pairs)
     else:
         out.write(render_report(report))
     if empty:
@@ -297,7 +310,7 @@ def cmd_backfill(args: argparse.Namespace, out: TextIO) -> int:
             report = job.run(p)
             reports.append(report)
             if args.json:
-                out.write(json.dumps(report.to_json()) + "\n")
+                out.write(json.dumps(report.to_json(args.pairs)) + "\n")
         if bar:
             bar.done()
         cfg = job.config

@@ -65,6 +65,16 @@ QUANTILE_KEYS = ("q05", "q25", "q50", "q75", "q95")
 #: least ``min_effect`` (see :mod:`monitor.events`).
 RULE_Q_LEVEL = "q-at-most-level"
 
+#: How many of a metric's pairs are written in a bounded form (``run --json`` by default,
+#: the history): every pair when there are at most :data:`FULL_PAIRS` (all pairs of up to
+#: 24 segments, the report's matrix) or the metric has a reference segment (one pair per
+#: other segment); otherwise the :data:`TOP_PAIRS` with the smallest adjusted p-values.
+FULL_PAIRS = 276
+TOP_PAIRS = 20
+#: Which pairs a metric entry holds: ``top`` (bounded, see above), ``significant`` (``top``
+#: plus every significant pair of a significant metric: the history's form), ``all``.
+PAIR_FORMS = ("top", "significant", "all")
+
 
 def check_format(data: Mapping[str, Any], what: str) -> int:
     """The format number of a stored JSON object (0 when absent); newer than :data:`FORMAT` is refused."""
@@ -498,6 +508,7 @@ class MetricResult:
     sensitivity: Sensitivity | None = None
     pair_level: float = math.nan  # the level pairs and flags were read at
     adjustment: Adjustment | None = None  # adjust_for: the additive model and the raw comparison beside it
+    pairs_left_out: int = 0  # pairs computed but not kept (a bounded entry read back)
 
     @property
     def computed(self) -> bool:
@@ -513,8 +524,34 @@ class MetricResult:
         return tuple(k for k in self.relevant_checks
                      if k in self.assumptions and self.assumptions[k].passed is False)
 
-    def to_json(self, *, stored: bool = False) -> dict[str, Any]:
-        """The ``run --json`` metric entry; ``stored`` adds the format number and the requested test."""
+    def kept_pairs(self, form: str = "all") -> tuple[PairRow, ...]:
+        """The pairs an entry of ``form`` (one of :data:`PAIR_FORMS`) holds, in their order.
+
+        ``top``: every pair when there are at most :data:`FULL_PAIRS` or the metric has
+        a reference segment, else the :data:`TOP_PAIRS` smallest adjusted p-values (NaN
+        last, ties in order); ``significant`` adds every significant pair of a
+        significant metric; ``all`` keeps every pair.
+        """
+        if form not in PAIR_FORMS:
+            raise ValueError(f"pair form {form!r} is not one of {', '.join(PAIR_FORMS)}")
+        pairs = self.pairs
+        if form == "all" or self.reference is not None or len(pairs) <= FULL_PAIRS:
+            return pairs
+        ps = np.array([p.p_adj for p in pairs], dtype=float)
+        ps[~np.isfinite(ps)] = np.inf
+        keep = np.zeros(len(pairs), dtype=bool)
+        keep[np.argsort(ps, kind="stable")[:TOP_PAIRS]] = True
+        if form == "significant" and self.significant:
+            keep |= np.fromiter((p.significant for p in pairs), dtype=bool, count=len(pairs))
+        return tuple(p for p, k in zip(pairs, keep) if k)
+
+    def to_json(self, *, stored: bool = False, pairs: str = "all") -> dict[str, Any]:
+        """The ``run --json`` metric entry; ``stored`` adds the format number and the requested test.
+
+        ``pairs`` is one of :data:`PAIR_FORMS`; ``pairs_left_out`` counts the pairs the
+        entry does not hold (those left out now and those left out when it was stored).
+        """
+        kept = self.kept_pairs(pairs)
         out: dict[str, Any] = {
             "metric": self.metric,
             "column": self.column,
@@ -530,7 +567,8 @@ class MetricResult:
             "posthoc": self.posthoc,
             "pair_level": _num(self.pair_level),
             "segments": [s.to_json() for s in self.segments],
-            "pairs": [p.to_json() for p in self.pairs],
+            "pairs": [p.to_json() for p in kept],
+            "pairs_left_out": self.pairs_left_out + len(self.pairs) - len(kept),
             "assumptions": {k: c.to_json(k in self.relevant_checks) for k, c in self.assumptions.items()},
             "data_quality": self.quality.to_json(),
             "note": self.note,
@@ -579,6 +617,7 @@ class MetricResult:
             sensitivity=Sensitivity.from_json(sens) if sens else None,
             pair_level=_nan(data.get("pair_level")),
             adjustment=Adjustment.from_json(data["adjustment"]) if data.get("adjustment") else None,
+            pairs_left_out=int(data.get("pairs_left_out") or 0),
         )
 
 

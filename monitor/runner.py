@@ -58,7 +58,9 @@ class PeriodReport:
     delivery: RelayOutcome
     note: str | None = None  # why the period was not stored (the source had no rows)
 
-    def to_json(self) -> dict[str, Any]:
+    def to_json(self, pairs: str = "all") -> dict[str, Any]:
+        """The ``run --json`` document; ``pairs`` says which pairs each metric holds
+        (:data:`monitor.model.PAIR_FORMS`: ``top`` is what ``run --json`` prints by default)."""
         doc = {
             "job": self.job,
             "period": self.period.ident,
@@ -67,7 +69,7 @@ class PeriodReport:
             "rows": self.rows,
             "null_segment_rows": self.null_segment_rows,
             "segments_seen": list(self.segments),
-            "metrics": [m.to_json() for m in self.metrics],
+            "metrics": [m.to_json(pairs=pairs) for m in self.metrics],
             "events": [e.to_json() for e in self.events],
             "alerts": {"sent": self.delivery.sent, "retrying": self.delivery.retrying,
                        "dead": self.delivery.dead},

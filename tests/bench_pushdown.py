@@ -51,9 +51,13 @@ PERIOD = "2026-W10"
 TABLE = "bench_events"
 
 
+ALL_DIFFER = False  # --all-differ: a segment effect on every metric (every metric significant)
+
+
 def metric_expr(j: int, rand: str, i: str) -> str:
-    """Metric j: a level, a small segment effect on every third metric, uniform noise, a few NULLs."""
-    effect = 0.05 * (j % 3)
+    """Metric j: a level, a small segment effect on two metrics of three (every metric with
+    ``--all-differ``), uniform noise, a few NULLs."""
+    effect = 0.05 * (j % 3 + (1 if ALL_DIFFER else 0))
     return (f"CASE WHEN {i} % 101 = {j} THEN NULL ELSE {100.0 * (j + 1)} + ({i} % 50) * {effect} "
             f"+ 10.0 * {rand} END")
 
@@ -228,8 +232,10 @@ def machine() -> str:
 
 
 def main() -> int:
-    if len(sys.argv) == 6 and sys.argv[1] == "--build":
+    global ALL_DIFFER
+    if len(sys.argv) == 7 and sys.argv[1] == "--build":
         engine, url, rows, metrics = sys.argv[2], sys.argv[3], int(sys.argv[4]), int(sys.argv[5])
+        ALL_DIFFER = sys.argv[6] == "all-differ"
         print(build(engine, url, rows, metrics))
         return 0
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
@@ -239,6 +245,9 @@ def main() -> int:
     ap.add_argument("--postgres", default="postgresql+psycopg://postgres@127.0.0.1:5432/segwatch_test")
     ap.add_argument("--workdir", default=None, help="folder for the SQLite/DuckDB files (default: a temp folder)")
     ap.add_argument("--skip-pull", action="store_true", help="leave out the pull-into-pandas measurement")
+    ap.add_argument("--all-differ", action="store_true",
+                    help="a segment effect on every metric, so that every metric is significant "
+                         "(a table built without it is rebuilt: use another --workdir or database)")
     ap.add_argument("--repeat", type=int, default=3,
                     help="runs of each measurement; the table gives the median time and the largest peak")
     args = ap.parse_args()
@@ -256,7 +265,8 @@ def main() -> int:
         }[engine]
         try:  # in a child process, so that no connection to the file outlives it
             _, _, out = measure([py, str(Path(__file__).resolve()), "--build", engine, url,
-                                 str(args.rows), str(args.metrics)], env)
+                                 str(args.rows), str(args.metrics),
+                                 "all-differ" if args.all_differ else "two-of-three"], env)
             gen = float(out.split()[-1])
         except Exception as exc:  # noqa: BLE001 - a missing server skips that engine
             print(f"{engine}: skipped ({str(exc).strip().splitlines()[-1]})", file=sys.stderr)

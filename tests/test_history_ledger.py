@@ -325,7 +325,7 @@ def test_an_old_outbox_table_gains_the_backoff_column(history_url):
 # ------------------------------------------------------------------ segment and pair rows
 
 
-def test_segment_and_pair_rows_are_stored_as_given_and_replaced_on_rerun(history):
+def test_segment_rows_and_pairs_are_stored_as_given_and_replaced_on_rerun(history):
     # store_period writes these rows with one driver-level executemany (positional on
     # SQLite, named on PostgreSQL); every column must land in its own place, NaN as NULL
     from monitor.model import MetricResult, PairRow, QualityCounts, SegmentRow
@@ -350,26 +350,23 @@ def test_segment_and_pair_rows_are_stored_as_given_and_replaced_on_rerun(history
             segment_results.c.job, segment_results.c.period, segment_results.c.metric, segment_results.c.segment,
             segment_results.c.n, segment_results.c.mean, segment_results.c.sd, segment_results.c.flag,
         ).order_by(segment_results.c.metric, segment_results.c.segment)).all()
-        got_pairs = conn.execute(sa.select(
-            pair_results.c.job, pair_results.c.period, pair_results.c.metric, pair_results.c.a, pair_results.c.b,
-            pair_results.c.diff, pair_results.c.p_adj, pair_results.c.significant,
-        ).order_by(pair_results.c.metric, pair_results.c.a, pair_results.c.b)).all()
+        pair_count = conn.execute(sa.select(sa.func.count()).select_from(pair_results)).scalar_one()
     seg_rows = [("A", 30, 20.5, 3.25, "high"), ("B", 2, None, None, None), ("C", 31, 19.0, 2.5, None)]
     assert [tuple(r) for r in got_segs] == [("hubs", "2026-W11", m, *row) for m in ("cost", "dwell")
                                             for row in seg_rows]
-    assert [tuple(r) for r in got_pairs] == [
-        ("hubs", "2026-W11", "cost", "A", "C", 1.5, 0.0125, True),
-        ("hubs", "2026-W11", "cost", "B", "C", -0.75, 0.5, False),
-        ("hubs", "2026-W11", "dwell", "A", "B", None, None, False),
-        ("hubs", "2026-W11", "dwell", "A", "C", 1.5, 0.0125, True),
-        ("hubs", "2026-W11", "dwell", "B", "C", -0.75, 0.5, False),
-    ]
+    # pairs are stored once, in the metric's entry (sw_pair_results is left for older histories)
+    assert pair_count == 0
+    stored = {e["metric"]: e for e in history.metric_history()}
+    assert [(p["a"], p["b"], p["diff"], p["p_adj"], p["significant"]) for p in stored["dwell"]["pairs"]] == [
+        ("A", "B", None, None, False), ("A", "C", 1.5, 0.0125, True), ("B", "C", -0.75, 0.5, False)]
+    assert [(p["a"], p["b"]) for p in stored["cost"]["pairs"]] == [("A", "C"), ("B", "C")]
+    assert stored["dwell"]["pairs_left_out"] == 0
     # a re-run replaces the period's rows whole
     history.store_period(period, [result("dwell", pairs[2:])], [], ["log:x"], **kw)
     with history.engine.connect() as conn:
         assert conn.execute(sa.select(sa.func.count()).select_from(segment_results)).scalar_one() == 3
-        assert [tuple(r) for r in conn.execute(sa.select(pair_results.c.metric, pair_results.c.a, pair_results.c.b,
-                                                         pair_results.c.significant))] == [("dwell", "B", "C", False)]
+    assert [(e["metric"], [(p["a"], p["b"]) for p in e["pairs"]]) for e in history.metric_history()] == [
+        ("dwell", [("B", "C")])]
 
 
 # ------------------------------------------------------------------ a whole run on each backend

@@ -57,7 +57,9 @@ def test_every_stored_entry_of_format_0_reads_back_typed_and_prints_the_same_jso
         assert all(isinstance(c, Check) and c.name == k for k, c in r.assumptions.items())
         assert r.effect_size is None or isinstance(r.effect_size, EffectSize)
         assert r.sensitivity is None or isinstance(r.sensitivity, Sensitivity)
-        assert r.to_json() == stored, (period, metric)
+        printed = r.to_json()
+        assert printed.pop("pairs_left_out") == 0  # a field added later: format 0 kept every pair
+        assert printed == stored, (period, metric)
         seen_methods.add(r.method)
         seen_ratio |= any(p.log_scale for p in r.pairs)
         seen_watched |= bool(r.relevant_checks)
@@ -152,3 +154,58 @@ def test_the_vocabulary_loads_without_scipy_or_sql():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=ROOT,
                          env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"})
     assert out.stdout.strip() == "[]"
+
+
+# ------------------------------------------------------------------ bounded pairs
+
+
+def _many_pairs(k: int, significant: bool, reference: str | None = None) -> MetricResult:
+    """k segments, all k(k-1)/2 pairs; p_adj falls with the pair's index, every tenth pair significant."""
+    import itertools
+
+    from monitor.model import QualityCounts
+
+    names = [f"s{i:03d}" for i in range(k)]
+    combos = list(itertools.combinations(names, 2))
+    pairs = tuple(PairRow(a, b, 0.1 * i, 1.0 - i / len(combos), significant=significant and i % 10 == 0)
+                  for i, (a, b) in enumerate(combos))
+    return MetricResult(metric="dwell", column="dwell", requested="anova", method="anova", method_reason="set",
+                        statistic=2.0, df=(k - 1.0, 100.0), p_value=0.01 if significant else 0.5,
+                        effect_size=None, segments=tuple(SegmentRow(n, 10, 1.0, 1.0) for n in names),
+                        pairs=pairs, posthoc="tukey-kramer", assumptions={}, quality=QualityCounts(10 * k),
+                        significant=significant, reference=reference)
+
+
+def test_bounded_pairs_keep_the_smallest_adjusted_p_values_and_count_the_rest():
+    from monitor.model import FULL_PAIRS, TOP_PAIRS
+
+    r = _many_pairs(30, significant=False)  # 435 pairs > FULL_PAIRS
+    assert len(r.pairs) == 435 > FULL_PAIRS
+    top = r.to_json(pairs="top")
+    assert len(top["pairs"]) == TOP_PAIRS and top["pairs_left_out"] == 435 - TOP_PAIRS
+    assert [p["p_adj"] for p in top["pairs"]] == [p.p_adj for p in r.pairs[-TOP_PAIRS:]]  # the smallest, in order
+    assert r.to_json(pairs="significant")["pairs"] == top["pairs"]  # nothing significant: the same
+    full = r.to_json(pairs="all")
+    assert len(full["pairs"]) == 435 and full["pairs_left_out"] == 0
+    back = MetricResult.from_json(top)  # read back: the count survives another write
+    assert len(back.pairs) == TOP_PAIRS and back.to_json(pairs="all")["pairs_left_out"] == 435 - TOP_PAIRS
+
+
+def test_a_significant_metric_keeps_its_significant_pairs_in_the_stored_form():
+    from monitor.model import TOP_PAIRS
+
+    r = _many_pairs(30, significant=True)
+    sig = {(p.a, p.b) for p in r.pairs if p.significant}
+    kept = r.kept_pairs("significant")
+    assert sig <= {(p.a, p.b) for p in kept}
+    assert len(kept) == len(sig | {(p.a, p.b) for p in r.pairs[-TOP_PAIRS:]})
+    assert len(r.kept_pairs("top")) == TOP_PAIRS
+
+
+def test_small_families_and_reference_metrics_keep_every_pair():
+    small = _many_pairs(24, significant=False)  # 276 pairs: the report's full matrix
+    assert small.kept_pairs("top") == small.pairs
+    ref = _many_pairs(30, significant=False, reference="s000")
+    assert ref.kept_pairs("top") == ref.pairs
+    with pytest.raises(ValueError, match="pair form 'some'"):
+        small.kept_pairs("some")

@@ -895,8 +895,9 @@ def _pairs_figure(d: ReportData, m: Mapping[str, Any], decimals: int | None) -> 
     else:
         names = [s["segment"] for s in m.get("segments", []) if not s.get("excluded")]
         names = [n for n in names if any(n in (p["a"], p["b"]) for p in pairs)]
-        if len(names) > MATRIX_MAX:
-            body = _pair_list(pairs, level)
+        left_out = int(m.get("pairs_left_out") or 0)  # a bounded entry: not every pair is there
+        if len(names) > MATRIX_MAX or left_out:
+            body = _pair_list(pairs, level, len(pairs) + left_out)
         else:
             body = _pair_matrix(names, pairs, level)
         cap = (f"<strong>Adjusted p-values of every pair</strong> ({_e(posthoc)}). A shaded cell counts as a "
@@ -940,10 +941,11 @@ def _pair_matrix(names: Sequence[str], pairs: Sequence[Mapping[str, Any]], level
     return f"<table class=\"matrix\"><thead>{head}</thead><tbody>{''.join(rows)}</tbody></table>"
 
 
-def _pair_list(pairs: Sequence[Mapping[str, Any]], level: float) -> str:
+def _pair_list(pairs: Sequence[Mapping[str, Any]], level: float, total: int | None = None) -> str:
+    total = len(pairs) if total is None else total
     hits = sorted((p for p in pairs if p.get("significant") and _ok(p.get("p_adj"))), key=lambda p: p["p_adj"])
     if not hits:
-        return f"<p class=\"quiet\">No pair at or below {lvl(level)} among {len(pairs)} pairs.</p>"
+        return f"<p class=\"quiet\">No pair at or below {lvl(level)} among {total:,} pairs.</p>"
     rows = "".join(f"<tr><td>{_e(p['a'])}</td><td>{_e(p['b'])}</td><td class=\"num\">{num(p.get('diff'))}</td>"
                    f"<td class=\"num {_shade(p['p_adj'], level)}\">{pval(p['p_adj'])}</td></tr>" for p in hits)
     return ("<table class=\"segments\"><thead><tr><th>a</th><th>b</th><th>a − b</th><th>p adjusted</th></tr>"

@@ -6,7 +6,9 @@ SQLAlchemy URL works; the default is a SQLite file.
 * ``sw_runs`` — one row per (job, period): when it was computed and with what settings.
 * ``sw_metric_results`` — one row per metric: method, statistic, p, q, effect size,
   assumptions, data quality, plus the full JSON entry as printed by ``run --json``.
-* ``sw_segment_results`` / ``sw_pair_results`` — per segment and per pair.
+* ``sw_segment_results`` — per segment. ``sw_pair_results`` — per pair, written by releases
+  before pairs were stored once, in the metric's JSON (bounded: :data:`monitor.model.PAIR_FORMS`,
+  ``significant``); kept so that those histories stay readable by SQL.
 * ``sw_events`` — events, keyed by a stable hash of (job, period, kind, metric, segment).
 * ``sw_outbox`` — one row per (event, alert channel): pending, sent or dead, with the
   number of attempts, the last error and when the next attempt is due (backoff).
@@ -384,10 +386,6 @@ class History:
                              ("job", "period", "metric", "segment", "n", "mean", "sd", "flag"),
                              [(job, ident, r.metric, s.segment, s.n, _fl(s.mean), _fl(s.sd), s.flag)
                               for r in results for s in r.segments])
-                _insert_rows(conn, pair_results,
-                             ("job", "period", "metric", "a", "b", "diff", "p_adj", "significant"),
-                             [(job, ident, r.metric, p.a, p.b, _fl(p.diff), _fl(p.p_adj), p.significant)
-                              for r in results for p in r.pairs])
                 return self._reconcile_events(conn, period, events, channels, now)
         except LeaseLost:
             raise
@@ -609,13 +607,13 @@ def _nulls_first_text() -> tuple:
 
 
 def _metric_row(key: Mapping[str, str], r: MetricResult) -> dict[str, Any]:
-    payload = r.to_json()
+    payload = r.to_json(pairs="significant")  # bounded: see monitor.model.PAIR_FORMS
     eff = r.effect_size
     return {
         **key, "metric": r.metric, "method": r.method, "statistic": _fl(r.statistic),
         "p_value": _fl(r.p_value), "q_value": _fl(r.q_value), "significant": r.significant,
         "effect_name": eff.name if eff else None, "effect_value": _fl(eff.value) if eff else None,
-        "payload": json.dumps(payload),
+        "payload": json.dumps(payload, separators=(",", ":")),
     }
 
 
