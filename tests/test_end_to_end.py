@@ -312,3 +312,17 @@ def test_statistics_load_apart_from_the_source(project: Path, where: str):
         assert lines["scipy after fetch"] == "False"
     assert lines["scipy after run"].startswith("True")
     assert "anova" in lines["scipy after run"] and "kruskal" in lines["scipy after run"]
+
+
+def test_run_json_pairs_option_keeps_small_families_whole(project: Path, capsys):
+    # a few hubs: every pair is printed in every form, and nothing is counted as left out
+    cfg = project / "job.yaml"
+    default = _run_json(capsys, cfg, "2026-W10")
+    assert main(["run", str(cfg), "--period", "2026-W10", "--json", "--pairs", "all"]) == 0
+    full = json.loads(capsys.readouterr().out)
+    for a, b in zip(default["metrics"], full["metrics"]):
+        k = len(a["segments"])
+        assert a["pairs"] == b["pairs"] and len(b["pairs"]) == k * (k - 1) // 2
+        assert a["pairs_left_out"] == b["pairs_left_out"] == 0
+    with pytest.raises(SystemExit):
+        main(["run", str(cfg), "--json", "--pairs", "some"])
