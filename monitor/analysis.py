@@ -166,7 +166,9 @@ def analyse_metric(data: MetricInput, job: JobConfig, n_metrics: int = 1) -> Met
     segs = Segments.of(labels, groups, samples if has_values else None)
     choice = methods.choose(m.test, segs, checks)
     method, reason = choice.method, choice.reason
-    res = method.omnibus(segs)
+    res = choice.result if choice.result is not None else method.omnibus(segs)
+    if not method.checks_apply:  # checks of means say nothing here (0/1 data: spreads follow the shares)
+        checks = {}
     if res.note:
         notes.append(res.note)
 

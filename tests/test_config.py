@@ -337,7 +337,7 @@ def test_objects_are_frozen_and_hashable(tmp_path):
         pytest.param(
             {"metrics": ["a", {"column": "b", "test": "anvoa"}]},
             "metrics[1].test: unknown test; did you mean 'anova'? (given: 'anvoa'; "
-            "accepted: auto, anova, welch, kruskal)",
+            "accepted: auto, anova, welch, kruskal, proportions)",
             id="metric-test"),
         pytest.param(
             {"metrics": [{"column": "b", "tset": "anova"}]},

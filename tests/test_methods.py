@@ -57,10 +57,10 @@ def _frame(labels, samples):
 
 class TestRegistry:
     def test_names_in_config_order(self):
-        assert methods.names() == ("anova", "welch", "kruskal")
+        assert methods.names() == ("anova", "welch", "kruskal", "proportions")
 
     def test_unknown_name_says_what_is_registered(self):
-        with pytest.raises(LookupError, match=r"unknown test method 'anvoa'; registered: anova, welch, kruskal"):
+        with pytest.raises(LookupError, match=r"unknown test method 'anvoa'; registered: anova, welch, kruskal, proportions"):
             methods.get("anvoa")
         assert methods.find("anvoa") is None and methods.find(None) is None
 
@@ -112,7 +112,7 @@ class TestRegistry:
         out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT,
                              env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"}, check=True).stdout
         assert out.splitlines() == [
-            "('auto', 'anova', 'welch', 'kruskal') Kruskal-Wallis Dunn Dunnett H(2) = 1.5",
+            "('auto', 'anova', 'welch', 'kruskal', 'proportions') Kruskal-Wallis Dunn Dunnett H(2) = 1.5",
             "False",
             "(1.0, 4.0) True",
         ]
@@ -361,7 +361,7 @@ class TestAddedMethod:
 
     def test_config_knows_only_registered_names(self):
         with pytest.raises(ConfigError, match=re.escape(
-                "metrics[0].test: unknown test (given: 'median'; accepted: auto, anova, welch, kruskal)")):
+                "metrics[0].test: unknown test (given: 'median'; accepted: auto, anova, welch, kruskal, proportions)")):
             _job("median")
 
     def test_runs_end_to_end(self, registered, data):

@@ -9,6 +9,7 @@ one more import line below.
 from monitor.methods import anova  # noqa: F401  # isort: skip
 from monitor.methods import welch  # noqa: F401  # isort: skip
 from monitor.methods import kruskal  # noqa: F401  # isort: skip
+from monitor.methods import proportions  # noqa: F401  # isort: skip
 from monitor.methods.auto import AUTO, Choice, choose, named, watched_checks
 from monitor.methods.base import (
     Family,

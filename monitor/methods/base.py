@@ -10,12 +10,13 @@ how its degrees of freedom are written. The numbers themselves come from
 :mod:`monitor.stats`; a method module only says which routine to use.
 
 Each method lives in a module of its own (:mod:`monitor.methods.anova`,
-:mod:`~monitor.methods.welch`, :mod:`~monitor.methods.kruskal`) and registers its
+:mod:`~monitor.methods.welch`, :mod:`~monitor.methods.kruskal`,
+:mod:`~monitor.methods.proportions`) and registers its
 class with :func:`register`; :mod:`monitor.methods` imports those modules. The rest
 of segwatch finds a method by name::
 
     from monitor import methods
-    methods.names()                    # ('anova', 'welch', 'kruskal')
+    methods.names()                    # ('anova', 'welch', 'kruskal', 'proportions')
     fisher = methods.get("anova")
     fisher.label, fisher.posthoc.name  # ("Fisher's ANOVA", 'tukey-kramer')
     res = fisher.omnibus(Segments.of(labels, groups))
@@ -36,11 +37,12 @@ from __future__ import annotations
 import math
 from abc import ABC, abstractmethod
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, ClassVar, Sequence, TypeVar
+from typing import TYPE_CHECKING, ClassVar, Mapping, Sequence, TypeVar
 
 if TYPE_CHECKING:  # pragma: no cover - typing only; these modules load scipy
     import numpy as np
 
+    from monitor.stats.diagnostics import Check
     from monitor.stats.effects import EffectSize
     from monitor.stats.flags import SegmentContrast
     from monitor.stats.omnibus import OmnibusResult
@@ -69,11 +71,15 @@ class Family:
     ranks : bool
         True when a pair's ``diff`` is a difference of mean ranks: it has no unit,
         and under ``transform: log`` it is not a log ratio.
+    points : bool
+        True when a pair's ``diff`` is a difference of proportions (the means of 0/1
+        values): stored as a proportion, written in percentage points.
     """
 
     name: str
     label: str
     ranks: bool = False
+    points: bool = False
 
 
 @dataclass(frozen=True)
@@ -123,6 +129,11 @@ class TestMethod(ABC):
         (``'classic'`` when the test assumes equal spreads, ``'hc3'`` otherwise; see
         :mod:`monitor.stats.adjusted`); None when the test cannot be asked for with
         ``adjust_for`` (a rank test has no additive model).
+    checks_apply : bool
+        False when the assumption checks of means (equal spreads, normality) say
+        nothing about this method's data (proportions: the spread of 0/1 values is a
+        function of the proportion). Then only :meth:`watched_checks` raise events, also
+        when ``test: auto`` chose the method.
     """
 
     __test__ = False  # not a pytest test class, whatever its name
@@ -137,6 +148,7 @@ class TestMethod(ABC):
     posthoc: ClassVar[Family]
     many_to_one: ClassVar[Family]
     adjusted_covariance: ClassVar[str | None] = "hc3"
+    checks_apply: ClassVar[bool] = True
 
     # ------------------------------------------------------------ the numbers
 
@@ -174,6 +186,17 @@ class TestMethod(ABC):
     def watched_checks(self, groups: Sequence[Moments]) -> tuple[str, ...]:
         """The assumption checks (:data:`monitor.stats.diagnostics.CHECK_NAMES`) whose
         change is worth an event when this method was asked for by name."""
+
+    def unusable(self, segs: Segments) -> str | None:
+        """Why this method's error rate does not hold for these segments (a clause that
+        starts with the method's label), or None when it may run. The default: it may."""
+        return None
+
+    def instead(self, segs: Segments, checks: Mapping[str, Check]) -> tuple[str, ...]:
+        """The methods to run, in order of preference, when :meth:`unusable` says no
+        (the first that may run on these segments is used). The default: the others in
+        registration order."""
+        return tuple(n for n in names() if n != self.name)
 
     # ------------------------------------------------------------ how it is written
 

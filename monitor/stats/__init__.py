@@ -42,7 +42,8 @@ SUBMODULES = ("adjusted", "cells", "diagnostics", "effects", "evidence", "flags"
               "posthoc", "power", "proportions", "stepdown", "studentized", "summary", "warnings")
 
 #: The submodules a period's analysis uses (what :func:`load` imports).
-ANALYSIS_MODULES = ("diagnostics", "effects", "flags", "multiplicity", "omnibus", "posthoc", "power")
+ANALYSIS_MODULES = ("diagnostics", "effects", "flags", "multiplicity", "omnibus", "posthoc", "power",
+                    "proportions", "stepdown")
 
 
 def __getattr__(name: str) -> Any:

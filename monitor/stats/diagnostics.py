@@ -57,6 +57,7 @@ from monitor.stats.posthoc import (
     _check_samples,
     adjust_family,
 )
+from monitor.stats.proportions import counts_from_moments
 
 if TYPE_CHECKING:  # pragma: no cover - typing only
     from monitor.stats.summary import Moments
@@ -557,6 +558,13 @@ def choose_method(
     -----
     The rule, in order (the thresholds are common practice, not a theorem):
 
+    0. ``'proportions'`` when every value of every segment is 0 or 1, recognised
+       from the summaries alone (:func:`monitor.stats.proportions.counts_from_moments`:
+       smallest and largest value in {0, 1} and ``M2 = n p (1 - p)``, i.e. the sum of
+       squares equals the sum). The segments are then shares of 1s, compared by the
+       test of homogeneity of proportions (Agresti 2013, sec. 3.2); an F test of their
+       means would mostly re-test the proportions through their spreads ``p (1 - p)``
+       and fails when a segment has no 1s.
     1. ``'kruskal'`` when normality is strongly doubted where it matters: the
        normality check failed and the smallest segment has fewer than
        :data:`SMALL_SEGMENT_N` (30) records, or some segment with 3 to 29
@@ -598,6 +606,17 @@ def choose_method(
     if checks is None:
         checks = run_checks(labels, groups, samples)
     summaries = _as_float_groups(groups)
+
+    present = [g for g in groups if g.n > 0]
+    if present and all(counts_from_moments(g) is not None for g in present):
+        ones = sum(counts_from_moments(g)[0] for g in present)
+        records = sum(int(g.n) for g in present)
+        return MethodChoice(
+            "proportions",
+            f"test of homogeneity of proportions: every value is 0 or 1 ({ones} ones in {records} records), "
+            "so the segments are compared as shares of 1s (a test of means would re-test the shares "
+            "through their spreads).",
+        )
 
     norm = checks.get("normality")
     bf = checks.get("brown_forsythe")

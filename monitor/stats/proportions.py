@@ -12,6 +12,11 @@ the segments differ?" is the test of homogeneity of proportions.
   percentage points through :attr:`ProportionPair.diff_pp`), a two-proportion test
   with Holm's adjustment within the family, and Newcombe's hybrid score interval at
   the Bonferroni level, so that the intervals hold simultaneously.
+* :func:`to_reference` - every other segment against one reference segment, with
+  Holm's adjustment over those ``k - 1`` comparisons and Bonferroni-level Newcombe
+  intervals.
+* :func:`cohens_w_interval` - a confidence interval for Cohen's w from the
+  noncentral chi-square distribution.
 * :func:`counts_from_moments` - the counts of a segment whose values are all 0 or 1,
   recognised from its pushed-down summary alone.
 
@@ -55,10 +60,12 @@ __all__ = [
     "ProportionPair",
     "ProportionPairs",
     "MONTE_CARLO_RESAMPLES",
+    "cohens_w_interval",
     "counts_from_moments",
     "homogeneity",
     "pairwise",
     "small_expected",
+    "to_reference",
 ]
 
 logger = logging.getLogger(__name__)
@@ -208,6 +215,8 @@ class ProportionPairs:
     adjust : str
         The adjustment of ``p_adj`` (see :func:`monitor.stats.multiplicity.adjust`).
     note : str or None
+    reference : str or None
+        The reference segment of :func:`to_reference` (``b`` of every pair), else None.
     """
 
     method: str
@@ -215,6 +224,7 @@ class ProportionPairs:
     confidence: float
     adjust: str
     note: str | None = None
+    reference: str | None = None
 
     def __str__(self) -> str:
         lines = [f"pairs of proportions (Newcombe intervals, {100 * self.confidence:g}% simultaneous; "
@@ -549,6 +559,131 @@ def pairwise(labels: Sequence[str], successes: Sequence[float], totals: Sequence
         note = ("no records in " + ", ".join(labels[s] for s in sorted(empty))
                 + ": their pairs are NaN; leave segments with n = 0 out before the comparison")
     return ProportionPairs("newcombe", tuple(pairs), confidence, adjust, note)
+
+
+def to_reference(labels: Sequence[str], successes: Sequence[float], totals: Sequence[float], reference: str, *,
+                 confidence: float = 0.95, adjust: str = "holm") -> ProportionPairs:
+    """Compare every other segment's proportion with the ``reference`` segment's.
+
+    Parameters
+    ----------
+    labels : sequence of str
+        Segment names; ``reference`` must be one of them.
+    successes, totals : sequence of whole numbers
+        Per segment, 1s and records.
+    reference : str
+    confidence : float
+        Simultaneous confidence of the ``k - 1`` intervals.
+    adjust : {'holm', 'bonferroni', 'bh', 'by', 'none'}
+        Adjustment of the p-values over the ``k - 1`` comparisons.
+
+    Returns
+    -------
+    ProportionPairs
+        One pair per other segment in label order, ``a`` = that segment, ``b`` =
+        ``reference``, ``diff = p_a - p_reference``; ``reference`` is set.
+
+    Notes
+    -----
+    Each comparison is the pair test of :func:`pairwise` (pooled two-proportion z, or
+    Fisher's exact test when an expected count of the pair's 2 x 2 table is below 5).
+    The family is the ``k - 1`` comparisons with the reference only, so Holm's (1979)
+    step-down over ``k - 1`` p-values controls the chance of any false gap [1]_; the
+    tests share the reference's counts and are positively correlated, where Holm's
+    procedure stays valid (it needs no independence) but is conservative against a
+    Dunnett-type joint distribution. The Newcombe (1998) hybrid score intervals are at
+    the Bonferroni level ``1 - (1 - confidence) / (k - 1)`` [2]_, so that they hold
+    together with probability at least ``confidence``.
+
+    References
+    ----------
+    .. [1] Holm, S. (1979). A simple sequentially rejective multiple test procedure.
+       Scandinavian Journal of Statistics 6(2), 65-70.
+    .. [2] Newcombe, R. G. (1998). Interval estimation for the difference between
+       independent proportions: comparison of eleven methods. Statistics in Medicine
+       17(8), 873-890.
+    """
+    x, n = _check_counts(successes, totals)
+    labels = tuple(str(s) for s in labels)
+    if len(labels) != x.size:
+        raise ValueError(f"labels has {len(labels)} entries for {x.size} segments")
+    confidence = _check_confidence(confidence)
+    if adjust not in multiplicity.METHODS:
+        raise ValueError(f"unknown adjustment {adjust!r}; accepted: {', '.join(multiplicity.METHODS)}")
+    if reference not in labels:
+        known = ", ".join(repr(v) for v in labels) or "none"
+        raise ValueError(f"reference {reference!r} is not one of the labels ({known})")
+    ref = labels.index(reference)
+    others = [i for i in range(x.size) if i != ref]
+    if not others:
+        return ProportionPairs("newcombe", (), confidence, adjust,
+                               note="no segment besides the reference to compare", reference=reference)
+    level = 1.0 - (1.0 - confidence) / len(others)
+    raw = [None if n[i] == 0 or n[ref] == 0 else _pair_test(int(x[i]), int(n[i]), int(x[ref]), int(n[ref]))
+           for i in others]
+    p_adj = multiplicity.adjust(np.array([r[2] if r is not None else np.nan for r in raw]), adjust)
+    pairs, empty = [], []
+    for i, r, pa in zip(others, raw, p_adj):
+        if r is None:
+            empty.extend(s for s in (i, ref) if n[s] == 0 and labels[s] not in empty)
+            pairs.append(ProportionPair(labels[i], reference, *(_NAN,) * 5, float("inf"), *(_NAN,) * 4, "none"))
+            continue
+        se, z, p, test = r
+        lo, hi = newcombe_interval(float(x[i]), float(n[i]), float(x[ref]), float(n[ref]), level)
+        pi, pr = x[i] / n[i], x[ref] / n[ref]
+        pairs.append(ProportionPair(labels[i], reference, float(pi), float(pr), float(pi - pr), se, z,
+                                    float("inf"), p, float(pa), lo, hi, test))
+    note = None
+    if empty:
+        note = ("no records in " + ", ".join(labels[s] for s in sorted(set(empty)))
+                + ": their comparisons are NaN; leave segments with n = 0 out before the comparison")
+    return ProportionPairs("newcombe", tuple(pairs), confidence, adjust, note, reference)
+
+
+def cohens_w_interval(statistic: float, df: float, n_total: int,
+                      confidence: float = 0.95) -> tuple[float, float]:
+    """A confidence interval for Cohen's w from Pearson's X^2.
+
+    Notes
+    -----
+    Cohen's w is ``sqrt(X^2 / N)`` (Cohen 1988, ch. 7 [1]_; for a ``k x 2`` table it
+    equals Cramér's V, and its square is the eta squared of a one-way ANOVA of the
+    0/1 values). Under a fixed effect X^2 is approximately noncentral chi-square on
+    ``df`` degrees of freedom with noncentrality ``lambda = N w^2``; the interval
+    inverts that distribution function in ``lambda`` ("pivoting the cdf", Smithson
+    2003 [2]_, Steiger 2004) and returns ``sqrt(lambda / N)`` at both ends (a limit
+    is 0 when even ``lambda = 0`` leaves too little probability below X^2).
+
+    References
+    ----------
+    .. [1] Cohen, J. (1988). Statistical Power Analysis for the Behavioral Sciences,
+       2nd ed. Hillsdale, NJ: Erlbaum.
+    .. [2] Smithson, M. (2003). Confidence Intervals. Thousand Oaks, CA: Sage
+       (noncentral chi-square intervals, ch. 5).
+    """
+    from scipy import optimize, special
+
+    confidence = _check_confidence(confidence)
+    if not (math.isfinite(statistic) and statistic >= 0 and df > 0 and n_total > 0):
+        return _NAN, _NAN
+
+    def cdf(lam: float) -> float:
+        return float(special.chndtr(statistic, df, lam)) if lam > 0 else float(stats.chi2.cdf(statistic, df))
+
+    def solve(target: float) -> float:
+        if cdf(0.0) <= target:
+            return 0.0
+        upper = max(1.0, 2.0 * statistic)
+        for _ in range(200):
+            if cdf(upper) < target:
+                break
+            upper *= 2.0
+        else:  # pragma: no cover - the cdf tends to 0 as lambda grows
+            return _NAN
+        return float(optimize.brentq(lambda lam: cdf(lam) - target, 0.0, upper, xtol=1e-10, rtol=1e-12))
+
+    lo, hi = solve((1.0 + confidence) / 2.0), solve((1.0 - confidence) / 2.0)
+    return math.sqrt(lo / n_total), math.sqrt(hi / n_total)
 
 
 # ---------------------------------------------------------------------------
