@@ -53,9 +53,9 @@ from typing import TYPE_CHECKING, Sequence
 
 from monitor import stats
 from monitor.methods.base import Family, Segments, TestMethod, register
-from monitor.model import EffectSize
 
 if TYPE_CHECKING:  # pragma: no cover
+    from monitor.model import EffectSize
     from monitor.stats.flags import SegmentContrast
     from monitor.stats.proportions import HomogeneityResult, ProportionPairs
     from monitor.stats.summary import Moments
@@ -105,6 +105,8 @@ class Proportions(TestMethod):
 
     def effect_size(self, res: HomogeneityResult, confidence: float) -> EffectSize:
         """Cohen's w with its noncentral chi-square interval (NaN with the result's note)."""
+        from monitor.model import EffectSize  # numpy-bearing: loaded when a result is made
+
         if not math.isfinite(res.statistic):
             return EffectSize("cohens_w", math.nan, note=res.note or "the test statistic is undefined")
         lo, hi = stats.proportions.cohens_w_interval(res.statistic, res.df[0], res.n_total, confidence)
