@@ -15,9 +15,9 @@ the result, and applies the rules every method shares, in this order:
    segments) is replaced by the first of its :meth:`~monitor.methods.base.TestMethod.instead`
    methods that may run, named or chosen alike;
 3. under ``auto`` only: when the chosen method cannot be computed on the data (Welch's
-   ANOVA with a segment of identical values), the first other method that can be
-   computed is used (registration order), so ``auto`` never gives no answer where
-   another method gives one. A method asked for by name is kept, with its note.
+   ANOVA with a segment of identical values), the first of its ``instead`` methods
+   that can be computed is used, so ``auto`` never gives no answer where another
+   method gives one. A method asked for by name is kept, with its note.
 
 Each replacement is said in the reason.
 """
@@ -77,21 +77,22 @@ def choose(requested: str, segs: Segments, checks: Mapping[str, Check]) -> Choic
         for name in method.instead(segs, checks):
             other = get(name)
             if _runs(other, segs):
-                reason = f"{reason}; {why}, so {other.label} was used"
+                reason = f"{reason.rstrip('.')}; {why}, so {other.label} was used"
                 method = other
                 break
     if requested != AUTO:
         return Choice(method, reason)
     result = method.omnibus(segs)
     if not math.isfinite(result.statistic):
-        for name in names():
+        for name in method.instead(segs, checks):
             other = get(name)
-            if other is method or not _runs(other, segs):
+            if not _runs(other, segs):
                 continue
             tried = other.omnibus(segs)
             if math.isfinite(tried.statistic):
                 note = (result.note or "undefined").rstrip(".")
-                reason = f"{reason}; {method.label} cannot be computed here ({note}), so {other.label} was used"
+                reason = (f"{reason.rstrip('.')}; {method.label} cannot be computed here ({note}), "
+                          f"so {other.label} was used")
                 method, result = other, tried
                 break
     return Choice(method, reason, result)
