@@ -417,11 +417,13 @@ def _segment_emerged(r: MetricResult, seg: str, flag: str, seg_word: str, unit: 
         where = f"{word} the rest"  # no plural of the segment column's name (no "branchs")
         n = row.above if flag == "high" else row.below
         count = f", significantly {word} {n} of {len(r.segments) - 1 - _excluded(r)} others"
+    family = methods.family(r.posthoc)
+    level = (f"share {_pp(row.mean, '%')}, {_pp(row.diff_vs_rest, ' pp', signed=True)}"
+             if family is not None and family.points else
+             f"mean {_value(row.mean, unit, decimals)}, {_signed(row.diff_vs_rest, unit, decimals)}")
     return Event(
         "emerged", r.metric, seg,
-        f"{seg_word} {seg} now stands {where} on {r.metric} "
-        f"(mean {_value(row.mean, unit, decimals)}, {_signed(row.diff_vs_rest, unit, decimals)} "
-        f"against the rest{count}){tail}.",
+        f"{seg_word} {seg} now stands {where} on {r.metric} ({level} against the rest{count}){tail}.",
         {"flag": flag, "mean": row.mean, "diff_vs_rest": row.diff_vs_rest, "above": row.above,
          "below": row.below, "reference": r.reference, **extra})
 
@@ -474,6 +476,9 @@ def _gap_text(r: MetricResult, seg: str, unit: str | None, decimals: int | None,
     family = methods.family(r.posthoc)
     if family is None or family.ranks:
         return None  # a mean-rank difference (Dunn) has no unit to speak in
+    if family.points:  # a difference of proportions, in percentage points
+        return (f"{_pp(pair.diff, ' pp', signed=True)} [{_pp(pair.ci_low, '', signed=True)}, "
+                f"{_pp(pair.ci_high, '', signed=True)}] (difference of shares{test})")
     ref_mean = rows[r.reference].mean if r.reference in rows else math.nan
     share = f", {100 * pair.diff / ref_mean:+.1f}% of {r.reference}'s mean" if ref_mean else ""
     return (f"{_signed(pair.diff, unit, decimals)} [{_signed(pair.ci_low, None, decimals)}, "
@@ -494,6 +499,13 @@ def _adjusted_detail(r: MetricResult, seg: str) -> dict[str, Any]:
 
 def _excluded(r: MetricResult) -> int:
     return sum(1 for s in r.segments if s.excluded)
+
+
+def _pp(share: float, suffix: str, signed: bool = False) -> str:
+    """A proportion (or a difference of two) in percent or percentage points: ``-3.2 pp``."""
+    if share is None or not math.isfinite(share):
+        return "n/a"
+    return f"{100 * share:{'+' if signed else ''}.1f}{suffix}"
 
 
 def _signed(x: float, unit: str | None, decimals: int | None) -> str:

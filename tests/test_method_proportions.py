@@ -292,6 +292,26 @@ class TestAuto:
         assert [p.p_adj for p in r.pairs] == pytest.approx(list(multipletests(ref, method="holm")[1]), rel=1e-9)
         assert {s.segment: s.flag for s in r.segments}["c"] == "low"
 
+    def test_events_speak_in_percentage_points(self):
+        from monitor import events
+
+        rng = np.random.default_rng(11)
+        arrays = _zero_one(rng, [200, 200, 200], [0.95, 0.93, 0.70])
+        labels = ["a", "b", "c"]
+        r = _analyse(_job(), arrays, labels)
+        evs = events.derive_events(_job(), [r], labels, 0, 600, events.Baseline.empty())
+        (msg,) = [e.message for e in evs if e.kind == "emerged" and e.segment == "c"]
+        share = arrays[2].mean()
+        rest = np.concatenate(arrays[:2]).mean()  # reference: numpy, the other segments' records pooled
+        assert f"(share {100 * share:.1f}%, {100 * (share - rest):+.1f} pp against the rest, significantly below 2 of 2" in msg
+
+        ref = _analyse(_job(reference="a"), arrays, labels)
+        evs = events.derive_events(_job(reference="a"), [ref], labels, 0, 600, events.Baseline.empty())
+        (msg,) = [e.message for e in evs if e.kind == "emerged" and e.segment == "c"]
+        pair = next(p for p in ref.pairs if p.a == "c")
+        assert (f"is now {100 * pair.diff:+.1f} pp [{100 * pair.ci_low:+.1f}, {100 * pair.ci_high:+.1f}] "
+                "(difference of shares; newcombe, adjusted p = ") in msg
+
     def test_report_and_command_line_name_it(self):
         from monitor import cli
         from monitor.present import report

@@ -76,7 +76,8 @@ class JobLike(Protocol):
 
 log = logging.getLogger(__name__)
 
-EFFECT_NAMES = {"omega_squared": "ω²", "eta_squared": "η²", "epsilon_squared": "ε²", "cohens_f": "Cohen's f"}
+EFFECT_NAMES = {"omega_squared": "ω²", "eta_squared": "η²", "epsilon_squared": "ε²", "cohens_f": "Cohen's f",
+                "cohens_w": "Cohen's w"}
 KIND_ORDER = ("emerged", "cleared", "assumption_broken", "data_quality", "segment_missing", "segment_new",
               "assumption_restored")
 KIND_WORDS = {
