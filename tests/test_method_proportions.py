@@ -15,6 +15,7 @@ from __future__ import annotations
 import itertools
 import json
 import math
+import re
 import sqlite3
 from datetime import datetime, timedelta
 from pathlib import Path
@@ -361,6 +362,12 @@ def test_zero_one_metric_with_a_segment_without_late_parcels_on_sqlite(tmp_path:
     assert m["df"] == [dof]
     assert m["significant"] is True
     assert {s["segment"]: s["flag"] for s in m["segments"]}["D"] == "low"
-    # the history keeps it and reads it back the same way
+    # the history keeps it and reads it back the same way; the report names the method and effect
     assert main(["history", str(cfg), "--json"]) == 0
     assert "proportions" in capsys.readouterr().out
+    out = tmp_path / "report.html"
+    assert main(["report", str(cfg), "--period", "2026-W10", "--out", str(out)]) == 0
+    html = out.read_text()
+    assert "test of homogeneity of proportions" in html
+    assert re.search(r"Cohen(&#x27;|&#39;|')s w 0\.\d\d", html)
+    assert "χ²(3) = " in html
