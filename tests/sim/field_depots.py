@@ -29,7 +29,10 @@ and the events of the 26 weeks are scored against the planted stories
 
 Rates per job-year are counts x 52 / 26, with the between-seed standard error.
 ``--set KEY=VALUE`` changes a top-level config key (YAML value), for example
-``--set 'decision={rule: per_period}'``.
+``--set 'decision={rule: per_period}'``. ``--code DIR`` runs the backfill with the
+segwatch package of another checkout (a release to compare with; the data, the config
+and the scoring stay this checkout's). False metric-level ``emerged`` are also counted
+per metric (``false emerged per job-year, by metric``).
 """
 
 from __future__ import annotations
@@ -63,7 +66,7 @@ def week_of(period: str) -> int:
     return int(period.split("-W")[1])
 
 
-def run_seed(seed: int, overrides: Sequence[str] = ()) -> dict[str, Any]:
+def run_seed(seed: int, overrides: Sequence[str] = (), code: str | None = None) -> dict[str, Any]:
     """Build, backfill and score one seed; returns the counts (see the module notes)."""
     with tempfile.TemporaryDirectory(prefix=f"segwatch-field-{seed}-") as tmp:
         folder = Path(tmp)
@@ -77,7 +80,7 @@ def run_seed(seed: int, overrides: Sequence[str] = ()) -> dict[str, Any]:
             config[key] = yaml.safe_load(value)
         path = folder / "demo.yaml"
         path.write_text(yaml.safe_dump(config, sort_keys=False))
-        env = dict(os.environ, PYTHONPATH=str(ROOT))
+        env = dict(os.environ, PYTHONPATH=str(code or ROOT), PYTHONDONTWRITEBYTECODE="1")
         proc = subprocess.run([sys.executable, "-m", "monitor", "backfill", str(path), "--from", "2026-W01",
                                "--to", f"2026-W{WEEKS:02d}", "--json"], capture_output=True, text=True,
                               env=env, cwd=folder)
@@ -91,7 +94,8 @@ def score(docs: Sequence[dict[str, Any]]) -> dict[str, Any]:
     """Counts of one seed's 26 weekly documents (``backfill --json``)."""
     out = {"false_emerged": 0, "false_broken": 0, "flapping": 0, "alerts": 0, "false_segment_emerged": 0,
            "noise_alerts": 0, "weeks_nothing_real": 0, "drift_week": None, "drift_segment_week": None,
-           "spread_week": None, "opening": False, "missing": False, "burst": False, "offset": False}
+           "spread_week": None, "opening": False, "missing": False, "burst": False, "offset": False,
+           "false_by_metric": {}}
     on: dict[str, bool] = {}
     false_at: list[tuple[str, int]] = []
     cleared_at: dict[str, list[int]] = {}
@@ -108,6 +112,7 @@ def score(docs: Sequence[dict[str, Any]]) -> dict[str, Any]:
                     cleared_at.setdefault(metric, []).append(week)
                 if kind == "emerged" and (metric in NULL_MEAN_METRICS or (metric == "dwell_hours" and week < 12)):
                     out["false_emerged"] += 1
+                    out["false_by_metric"][metric] = out["false_by_metric"].get(metric, 0) + 1
                     false_at.append((metric, week))
                     noise = True
             elif kind == "emerged":
@@ -178,6 +183,10 @@ def summarise(results: Sequence[dict[str, Any]]) -> str:
          f"{sum(r['opening'] for r in results)}, {sum(r['missing'] for r in results)}, "
          f"{sum(r['burst'] for r in results)}, {sum(r['offset'] for r in results)} of {n} seeds"),
     ]
+    for metric in ("on_time", "claim_cost", "counter_wait_min", "dwell_hours"):
+        v = np.array([r.get("false_by_metric", {}).get(metric, 0) for r in results], float) * per_year
+        err = f" ± {v.std(ddof=1) / math.sqrt(n):.2f}" if n > 1 else ""
+        rows.append((f"false `emerged` per job-year on `{metric}`", f"{v.mean():.2f}{err}"))
     lines = ["| measure (%d seeds) | value |" % n, "|---|---|"] + [f"| {a} | {b} |" for a, b in rows]
     return "\n".join(lines)
 
@@ -189,10 +198,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--set", action="append", default=[], metavar="KEY=YAML", help="override a top-level config key")
     ap.add_argument("--out", help="also write the table to this file")
+    ap.add_argument("--code", help="run the backfill with the segwatch package in this folder")
     args = ap.parse_args(argv)
     seeds = list(range(args.first_seed, args.first_seed + args.seeds))
     with ProcessPoolExecutor(args.workers) as pool:
-        results = list(pool.map(run_seed, seeds, [tuple(args.set)] * len(seeds)))
+        results = list(pool.map(run_seed, seeds, [tuple(args.set)] * len(seeds), [args.code] * len(seeds)))
     text = summarise(results)
     print(text)
     if args.out:
