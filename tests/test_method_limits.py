@@ -140,7 +140,7 @@ class TestWelchSizeFloor:
         """2,000 segments x 3 identical N(50, 5) rows: no segment claimed significantly above
         (today: Welch, q = 0, omega squared negative and a segment flagged)."""
         rng = np.random.default_rng(18)
-        r = _analyse(_job(), [rng.normal(50.0, 5.0, 3) for _ in range(2000)], with_values=False)
+        r = _analyse(_job(), [rng.normal(50.0, 5.0, 3) for _ in range(2000)])
         assert r.method == "anova"
         assert not r.significant or r.effect_size.value > 0
         assert [s.segment for s in r.segments if s.flag] == []
