@@ -19,7 +19,16 @@ history stores carries a format number, :data:`FORMAT`:
 * format 0: histories written before stored entries carried a number (the entry is
   the ``run --json`` metric entry; the run's settings were not recorded);
 * format 1: the same entry plus ``"format": 1`` and ``"requested"`` (the test the
-  config asked for); each stored run records its :class:`RunSettings`.
+  config asked for); each stored run records its :class:`RunSettings`;
+* format 2: the same entry; the history may keep a large entry packed (LZMA) beside
+  a small stand-in that names its metric and ``"packed"`` (see
+  :mod:`monitor.store.history`), so that a release reading only format 1 refuses it
+  instead of reading the stand-in as a result.
+
+Read back from the history, a period comes as :class:`StoredRun` (its window, rows and
+the :class:`RunSettings` it was judged by, when recorded) and each metric's entry as
+:class:`StoredResult` (the :class:`MetricResult` with its period and the level its
+verdict was judged at).
 
 ``from_json`` reads every format up to :data:`FORMAT` and refuses a newer one with a
 :class:`~monitor.errors.HistoryError` that says to upgrade segwatch.
@@ -42,7 +51,7 @@ if TYPE_CHECKING:  # type names only: these modules sit above this one
     from .stats.summary import Moments
 
 #: The newest format of stored JSON this release writes and reads.
-FORMAT = 1
+FORMAT = 2
 
 #: The event kinds of the contract (CONTRACT.md, "Event kinds"); operational events
 #: (``op_...``) are apart from these.
@@ -718,11 +727,85 @@ class RunSettings:
 
     @classmethod
     def from_json(cls, data: Mapping[str, Any]) -> "RunSettings":
+        """Read stored settings back; keys a later release added are ignored, keys an
+        earlier one did not write take their defaults (a level not written reads as NaN)."""
         fmt = check_format(data, "stored run settings")
-        return cls(data["fdr_method"], float(data["fdr_level"]), float(data["alpha"]), data.get("pairs") or "within",
-                   int(data.get("confirm") or 1), data.get("rule") or RULE_Q_LEVEL,
+        return cls(str(data.get("fdr_method") or ""), _nan(data.get("fdr_level")), _nan(data.get("alpha")),
+                   data.get("pairs") or "within", int(data.get("confirm") or 1), data.get("rule") or RULE_Q_LEVEL,
                    tuple(MetricSettings.from_json(m) for m in data.get("metrics") or ()),
                    str(data.get("version") or ""), fmt)
+
+
+# ---------------------------------------------------------------- read back from the history
+
+
+@dataclass(frozen=True)
+class StoredRun:
+    """One stored period: its window, what was read, and the settings it was judged by.
+
+    ``settings`` is None for a period stored before runs recorded their settings
+    (histories of schema 0); its verdicts are then read as stored, by no level.
+    """
+
+    period: str
+    period_start: str  # ISO 8601 with the job's offset
+    period_end: str
+    computed_at: str | None  # ISO 8601 UTC with a Z
+    fingerprint: str
+    rows: int
+    null_segment_rows: int
+    segments: tuple[str, ...]
+    settings: RunSettings | None = None
+
+    @property
+    def level(self) -> float | None:
+        """The false-discovery level the period's verdicts were judged at, if recorded."""
+        if self.settings is None or not math.isfinite(self.settings.fdr_level):
+            return None
+        return self.settings.fdr_level
+
+    def to_json(self) -> dict[str, Any]:
+        return {"format": FORMAT, "period": self.period, "period_start": self.period_start,
+                "period_end": self.period_end, "computed_at": self.computed_at, "fingerprint": self.fingerprint,
+                "rows": self.rows, "null_segment_rows": self.null_segment_rows, "segments": list(self.segments),
+                "settings": self.settings.to_json() if self.settings is not None else None}
+
+    @classmethod
+    def from_json(cls, data: Mapping[str, Any]) -> "StoredRun":
+        check_format(data, f"stored run of period {data.get('period')!r}")
+        settings = data.get("settings")
+        return cls(str(data["period"]), str(data.get("period_start") or ""), str(data.get("period_end") or ""),
+                   data.get("computed_at"), str(data.get("fingerprint") or ""), int(data.get("rows") or 0),
+                   int(data.get("null_segment_rows") or 0), tuple(data.get("segments") or ()),
+                   RunSettings.from_json(settings) if settings else None)
+
+
+@dataclass(frozen=True)
+class StoredResult:
+    """One metric's stored verdict in one period, with the level it was judged at.
+
+    ``judged_at`` is the stored run's ``fdr_level``; None when the run did not record
+    its settings, and then ``result.significant`` (the verdict as stored) is all there
+    is: a stored verdict is never judged again by today's config.
+    """
+
+    period: str
+    result: MetricResult
+    judged_at: float | None = None
+
+    @property
+    def metric(self) -> str:
+        return self.result.metric
+
+    def to_json(self) -> dict[str, Any]:
+        """The entry as stored (``MetricResult.to_json(stored=True)``), with its period and ``judged_at``."""
+        return {"period": self.period, **self.result.to_json(stored=True), "judged_at": _num(self.judged_at)}
+
+    @classmethod
+    def from_json(cls, data: Mapping[str, Any], requested: str | None = None) -> "StoredResult":
+        level = data.get("judged_at")
+        return cls(str(data["period"]), MetricResult.from_json(data, requested),
+                   None if level is None else float(level))
 
 
 # ---------------------------------------------------------------- JSON helpers

@@ -36,7 +36,7 @@ from .errors import LeaseLost, PeriodBusy, PeriodError, SegwatchError
 from .events import Baseline, derive_events, lookback
 from .store.history import History, iso_utc
 from .store.ledger import LEASE_SECONDS, Claim, Ledger, LedgerEntry
-from .model import Event, MetricResult
+from .model import Event, MetricResult, RunSettings
 from .periods import Period, latest_complete, parse_period, period_range
 from .source import Source
 
@@ -254,7 +254,7 @@ class Job:
             period, results, events, channel_kinds(self.sinks),
             computed_at=self.clock.now(), fingerprint=config_hash(cfg),
             rows=data.rows, null_segment_rows=data.null_segment_rows, segments=data.segments,
-            lease_owner=claim.owner,
+            lease_owner=claim.owner, settings=RunSettings.of(cfg, results),
         )
         outcome = self.deliver() if deliver else RelayOutcome()
         log.info("job %s: %s stored, %d events (%d new), alerts sent %d", cfg.job, period.ident,

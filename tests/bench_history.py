@@ -8,7 +8,7 @@ from the same distribution, so that nothing is significant; ``--rows-per-segment
 rows per segment and week), runs ``--periods`` consecutive weeks into a fresh SQLite
 history through the Python API, and prints per period: the history's growth (file
 size after ``VACUUM``, first period left out so that the empty tables' pages do not
-count), the stored metric JSON per period, the size of ``run --json`` in its default
+count), the stored metric entries per period (JSON, or LZMA-packed where long), the size of ``run --json`` in its default
 (compact) form and with ``--pairs all``, and the CPU seconds to write each form.
 Sizes are what matter; the seconds are CPU time of this process
 (``resource.getrusage``), from one run on the machine noted.
@@ -85,8 +85,11 @@ def history_bytes(path: Path) -> int:
 
 
 def payload_bytes(path: Path) -> int:
+    """The stored metric entries: their JSON, or where packed, the packed bytes and the stand-in."""
     conn = sqlite3.connect(path)
-    n = conn.execute("SELECT COALESCE(SUM(LENGTH(payload)), 0) FROM sw_metric_results").fetchone()[0]
+    cols = {r[1] for r in conn.execute("PRAGMA table_info(sw_metric_results)")}
+    packed = " + COALESCE(LENGTH(packed), 0)" if "packed" in cols else ""
+    n = conn.execute(f"SELECT COALESCE(SUM(LENGTH(payload){packed}), 0) FROM sw_metric_results").fetchone()[0]
     conn.close()
     return int(n)
 

@@ -9,6 +9,7 @@ PostgreSQL half is skipped with the reason.
 from __future__ import annotations
 
 import json
+import math
 import socket
 import sqlite3
 import subprocess
@@ -325,9 +326,9 @@ def test_an_old_outbox_table_gains_the_backoff_column(history_url):
 # ------------------------------------------------------------------ segment and pair rows
 
 
-def test_segment_rows_and_pairs_are_stored_as_given_and_replaced_on_rerun(history):
-    # store_period writes these rows with one driver-level executemany (positional on
-    # SQLite, named on PostgreSQL); every column must land in its own place, NaN as NULL
+def test_segments_and_pairs_are_stored_once_in_the_entry_and_replaced_on_rerun(history):
+    # every segment number and pair lands in the metric's entry, NaN as null, and reads
+    # back typed; sw_segment_results and sw_pair_results are left for older histories
     from monitor.model import MetricResult, PairRow, QualityCounts, SegmentRow
     from monitor.store.history import pair_results, segment_results
 
@@ -344,27 +345,28 @@ def test_segment_rows_and_pairs_are_stored_as_given_and_replaced_on_rerun(histor
                             pairs=pair_rows, posthoc="tukey-kramer", assumptions={}, quality=QualityCounts(63))
 
     kw = dict(computed_at=T0, fingerprint="f", rows=63, null_segment_rows=0, segments=["A", "B", "C"])
+    # rows an older release wrote for this period: dropped when the period is stored again
+    history.ensure()
+    with history.begin() as conn:
+        conn.execute(sa.insert(segment_results).values(job="hubs", period="2026-W11", metric="dwell", segment="A",
+                                                       n=1, mean=1.0, sd=None, flag=None))
+        conn.execute(sa.insert(pair_results).values(job="hubs", period="2026-W11", metric="dwell", a="A", b="C",
+                                                    diff=1.0, p_adj=0.5, significant=False))
     history.store_period(period, [result("dwell", pairs), result("cost", pairs[1:])], [], ["log:x"], **kw)
     with history.engine.connect() as conn:
-        got_segs = conn.execute(sa.select(
-            segment_results.c.job, segment_results.c.period, segment_results.c.metric, segment_results.c.segment,
-            segment_results.c.n, segment_results.c.mean, segment_results.c.sd, segment_results.c.flag,
-        ).order_by(segment_results.c.metric, segment_results.c.segment)).all()
-        pair_count = conn.execute(sa.select(sa.func.count()).select_from(pair_results)).scalar_one()
-    seg_rows = [("A", 30, 20.5, 3.25, "high"), ("B", 2, None, None, None), ("C", 31, 19.0, 2.5, None)]
-    assert [tuple(r) for r in got_segs] == [("hubs", "2026-W11", m, *row) for m in ("cost", "dwell")
-                                            for row in seg_rows]
-    # pairs are stored once, in the metric's entry (sw_pair_results is left for older histories)
-    assert pair_count == 0
+        for table in (segment_results, pair_results):
+            assert conn.execute(sa.select(sa.func.count()).select_from(table)).scalar_one() == 0
     stored = {e["metric"]: e for e in history.metric_history()}
+    assert [(s["segment"], s["n"], s["mean"], s["sd"], s["flag"]) for s in stored["dwell"]["segments"]] == [
+        ("A", 30, 20.5, 3.25, "high"), ("B", 2, None, None, None), ("C", 31, 19.0, 2.5, None)]
+    typed = {r.metric: r.result for r in history.results()}
+    assert typed["cost"].segments[0] == segs[0] and math.isnan(typed["cost"].segments[1].mean)
     assert [(p["a"], p["b"], p["diff"], p["p_adj"], p["significant"]) for p in stored["dwell"]["pairs"]] == [
         ("A", "B", None, None, False), ("A", "C", 1.5, 0.0125, True), ("B", "C", -0.75, 0.5, False)]
     assert [(p["a"], p["b"]) for p in stored["cost"]["pairs"]] == [("A", "C"), ("B", "C")]
     assert stored["dwell"]["pairs_left_out"] == 0
-    # a re-run replaces the period's rows whole
+    # a re-run replaces the period's entries whole
     history.store_period(period, [result("dwell", pairs[2:])], [], ["log:x"], **kw)
-    with history.engine.connect() as conn:
-        assert conn.execute(sa.select(sa.func.count()).select_from(segment_results)).scalar_one() == 3
     assert [(e["metric"], [(p["a"], p["b"]) for p in e["pairs"]]) for e in history.metric_history()] == [
         ("dwell", [("B", "C")])]
 

@@ -52,6 +52,10 @@ class SQLiteEngine(Engine):
 
     def before_create(self, url: sa.URL, role: str) -> None:
         db = url.database
+        if db and db.startswith("file:") and url.query.get("uri") == "true":  # an SQLite URI: file:PATH?mode=ro
+            db = db[len("file:"):]
+            if url.query.get("mode") == "ro":  # opened read-only: nothing to create
+                return
         if role == "history" and db and db != ":memory:":
             try:
                 Path(db).parent.mkdir(parents=True, exist_ok=True)
@@ -70,7 +74,10 @@ class SQLiteEngine(Engine):
             cur = dbapi_conn.cursor()
             cur.execute(f"PRAGMA busy_timeout={HISTORY_LOCK_TIMEOUT * 1000}")  # before anything that may wait
             if on_file and cur.execute("PRAGMA journal_mode").fetchone()[0].lower() != "wal":
-                cur.execute("PRAGMA journal_mode=WAL")  # once per file; WAL persists in the file
+                try:
+                    cur.execute("PRAGMA journal_mode=WAL")  # once per file; WAL persists in the file
+                except sqlite3.OperationalError:  # a read-only history is read in the mode it has
+                    pass
             cur.close()
 
         def _on_begin(conn: sa.Connection) -> None:  # pragma: no cover

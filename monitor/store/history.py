@@ -1,14 +1,24 @@
 """The history database: every stored period's results, its events and the alert outbox.
 
-Tables (prefix ``sw_``) are created on first use with SQLAlchemy Core, so any
-SQLAlchemy URL works; the default is a SQLite file.
+Tables (prefix ``sw_``) are created on the first write with SQLAlchemy Core, so any
+SQLAlchemy URL works; the default is a SQLite file. Reading never creates or changes
+a table: ``history``, ``report`` and ``alerts`` work on a read-only history.
 
-* ``sw_runs`` — one row per (job, period): when it was computed and with what settings.
+* ``sw_schema`` — the layout's version (:data:`SCHEMA_VERSION`); a history without it is
+  version 0. Opening an older history for writing upgrades it in place (columns added,
+  label columns widened); a newer one is refused with a line that says to upgrade segwatch.
+* ``sw_runs`` — one row per (job, period): when it was computed, and in ``settings`` the
+  :class:`~monitor.model.RunSettings` its verdicts were judged by (JSON; NULL for periods
+  stored before schema 1).
 * ``sw_metric_results`` — one row per metric: method, statistic, p, q, effect size,
-  assumptions, data quality, plus the full JSON entry as printed by ``run --json``.
-* ``sw_segment_results`` — per segment. ``sw_pair_results`` — per pair, written by releases
-  before pairs were stored once, in the metric's JSON (bounded: :data:`monitor.model.PAIR_FORMS`,
-  ``significant``); kept so that those histories stay readable by SQL.
+  plus the full JSON entry as printed by ``run --json`` (segments, bounded pairs:
+  :data:`monitor.model.PAIR_FORMS` ``significant``, assumptions, data quality). An entry
+  longer than :data:`PACK_ABOVE` characters is kept LZMA-packed in ``packed`` (a
+  :data:`PACK_MARK` header, then the raw LZMA2 stream of the JSON) and ``payload`` holds a
+  stand-in naming the metric; reads unpack it.
+* ``sw_segment_results`` — per segment, and ``sw_pair_results`` — per pair: written by
+  releases before segments and pairs were stored once, in the metric's entry; kept so that
+  those histories stay readable by SQL (a period stored again drops its rows).
 * ``sw_events`` — events, keyed by a stable hash of (job, period, kind, metric, segment).
 * ``sw_outbox`` — one row per (event, alert channel): pending, sent or dead, with the
   number of attempts, the last error and when the next attempt is due (backoff).
@@ -37,6 +47,7 @@ from __future__ import annotations
 
 import json
 import logging
+import lzma
 import math
 import threading
 from dataclasses import dataclass
@@ -46,12 +57,14 @@ from typing import Any, Iterable, Mapping, Sequence
 import sqlalchemy as sa
 from sqlalchemy.engine import Engine
 from sqlalchemy.exc import SQLAlchemyError
+from sqlalchemy.ext.compiler import compiles
 
 from ..engines import create_engine
 from ..redact import one_line, redact
 from ..engines import get as engine_for
 from ..errors import HistoryError, LeaseLost
-from ..model import Event, MetricResult
+from .. import __version__
+from ..model import FORMAT, Event, MetricResult, RunSettings, StoredResult, StoredRun
 from ..periods import Period
 
 log = logging.getLogger(__name__)
@@ -60,12 +73,49 @@ log = logging.getLogger(__name__)
 OP_PREFIX = "op_"
 
 
+#: The layout of the history tables this release writes; a history without ``sw_schema``
+#: is version 0. Version 1: ``sw_runs.settings``, ``sw_metric_results.packed``, labels
+#: (job, metric, segment, channel and owner names) as TEXT on PostgreSQL and MySQL/MariaDB.
+SCHEMA_VERSION = 1
+
+#: Entries longer than this (characters of JSON) are stored packed; shorter ones stay plain JSON.
+PACK_ABOVE = 4096
+#: The header of a packed entry: segwatch, LZMA2 raw stream, version 1 of the packing.
+PACK_MARK = b"swL1"
+_PACK_FILTERS = [{"id": lzma.FILTER_LZMA2, "preset": 6, "dict_size": 1 << 20}]
+
+#: Bytes an InnoDB index key may hold (DYNAMIC rows); four bytes per utf8mb4 character.
+_MYSQL_KEY_BYTES = 3072
+
 metadata = sa.MetaData()
 _SCHEMA_LOCK = threading.RLock()
 
+
+def Label(length: int = 200) -> sa.types.TypeEngine:  # noqa: N802 - reads as a column type
+    """A name a user or a source chooses (job, metric, segment, channel, owner).
+
+    TEXT on PostgreSQL and MySQL/MariaDB, so that no length a source can hold is refused
+    (a VARCHAR(200) stopped a job for good on one long segment value); VARCHAR elsewhere
+    (SQLite does not enforce the length). On MySQL/MariaDB a key over a TEXT column
+    indexes its first characters (see :func:`_mysql_prefixes`).
+    """
+    return sa.String(length).with_variant(sa.Text(), "postgresql", "mysql", "mariadb")
+
+
+def _payload_type() -> sa.types.TypeEngine:
+    from sqlalchemy.dialects import mysql
+
+    return sa.Text().with_variant(mysql.LONGTEXT(), "mysql", "mariadb")
+
+
+def _packed_type() -> sa.types.TypeEngine:
+    from sqlalchemy.dialects import mysql
+
+    return sa.LargeBinary().with_variant(mysql.LONGBLOB(), "mysql", "mariadb")
+
 runs = sa.Table(
     "sw_runs", metadata,
-    sa.Column("job", sa.String(200), primary_key=True),
+    sa.Column("job", Label(), primary_key=True),
     sa.Column("period", sa.String(16), primary_key=True),
     sa.Column("period_start", sa.String(40), nullable=False),  # ISO 8601 with offset
     sa.Column("period_end", sa.String(40), nullable=False),
@@ -75,13 +125,14 @@ runs = sa.Table(
     sa.Column("rows", sa.Integer, nullable=False),
     sa.Column("null_segment_rows", sa.Integer, nullable=False),
     sa.Column("segments", sa.Text, nullable=False),  # JSON list of segments seen
+    sa.Column("settings", sa.Text),  # RunSettings.to_json(); NULL before schema 1
 )
 
 metric_results = sa.Table(
     "sw_metric_results", metadata,
-    sa.Column("job", sa.String(200), primary_key=True),
+    sa.Column("job", Label(), primary_key=True),
     sa.Column("period", sa.String(16), primary_key=True),
-    sa.Column("metric", sa.String(200), primary_key=True),
+    sa.Column("metric", Label(), primary_key=True),
     sa.Column("method", sa.String(16), nullable=False),
     sa.Column("statistic", sa.Float),
     sa.Column("p_value", sa.Float),
@@ -89,15 +140,16 @@ metric_results = sa.Table(
     sa.Column("significant", sa.Boolean, nullable=False),
     sa.Column("effect_name", sa.String(40)),
     sa.Column("effect_value", sa.Float),
-    sa.Column("payload", sa.Text, nullable=False),  # the metric's JSON entry
+    sa.Column("payload", _payload_type(), nullable=False),  # the metric's JSON entry (or a stand-in)
+    sa.Column("packed", _packed_type()),  # the entry LZMA-packed when long (PACK_MARK ...); else NULL
 )
 
 segment_results = sa.Table(
     "sw_segment_results", metadata,
-    sa.Column("job", sa.String(200), primary_key=True),
+    sa.Column("job", Label(), primary_key=True),
     sa.Column("period", sa.String(16), primary_key=True),
-    sa.Column("metric", sa.String(200), primary_key=True),
-    sa.Column("segment", sa.String(200), primary_key=True),
+    sa.Column("metric", Label(), primary_key=True),
+    sa.Column("segment", Label(), primary_key=True),
     sa.Column("n", sa.Integer, nullable=False),
     sa.Column("mean", sa.Float),
     sa.Column("sd", sa.Float),
@@ -106,11 +158,11 @@ segment_results = sa.Table(
 
 pair_results = sa.Table(
     "sw_pair_results", metadata,
-    sa.Column("job", sa.String(200), primary_key=True),
+    sa.Column("job", Label(), primary_key=True),
     sa.Column("period", sa.String(16), primary_key=True),
-    sa.Column("metric", sa.String(200), primary_key=True),
-    sa.Column("a", sa.String(200), primary_key=True),
-    sa.Column("b", sa.String(200), primary_key=True),
+    sa.Column("metric", Label(), primary_key=True),
+    sa.Column("a", Label(), primary_key=True),
+    sa.Column("b", Label(), primary_key=True),
     sa.Column("diff", sa.Float),
     sa.Column("p_adj", sa.Float),
     sa.Column("significant", sa.Boolean, nullable=False),
@@ -119,39 +171,39 @@ pair_results = sa.Table(
 events_t = sa.Table(
     "sw_events", metadata,
     sa.Column("event_key", sa.String(40), primary_key=True),
-    sa.Column("job", sa.String(200), nullable=False),
+    sa.Column("job", Label(), nullable=False),
     sa.Column("period", sa.String(16), nullable=False),
     sa.Column("kind", sa.String(32), nullable=False),
-    sa.Column("metric", sa.String(200)),
-    sa.Column("segment", sa.String(200)),
+    sa.Column("metric", Label()),
+    sa.Column("segment", Label()),
     sa.Column("message", sa.Text, nullable=False),
     sa.Column("detail", sa.Text, nullable=False),
     sa.Column("detected_at", sa.DateTime(), nullable=False),
-    sa.Index("ix_sw_events_job_period", "job", "period"),
+    sa.Index("ix_sw_events_job_period", "job", "period", mysql_length={"job": 700}),
 )
 
 outbox = sa.Table(
     "sw_outbox", metadata,
     sa.Column("event_key", sa.String(40), primary_key=True),
-    sa.Column("channel", sa.String(400), primary_key=True),
-    sa.Column("job", sa.String(200), nullable=False),
+    sa.Column("channel", Label(400), primary_key=True),
+    sa.Column("job", Label(), nullable=False),
     sa.Column("status", sa.String(8), nullable=False),  # pending | sent | dead
     sa.Column("attempts", sa.Integer, nullable=False, default=0),
     sa.Column("last_error", sa.Text),
     sa.Column("updated_at", sa.DateTime(), nullable=False),
     sa.Column("next_attempt_at", sa.DateTime()),  # NULL: due now
-    sa.Index("ix_sw_outbox_status", "job", "channel", "status"),
+    sa.Index("ix_sw_outbox_status", "job", "channel", "status", mysql_length={"job": 380, "channel": 380}),
 )
 
 ledger_t = sa.Table(
     "sw_ledger", metadata,
-    sa.Column("job", sa.String(200), primary_key=True),
+    sa.Column("job", Label(), primary_key=True),
     sa.Column("period", sa.String(16), primary_key=True),
     sa.Column("state", sa.String(8), nullable=False),  # pending | running | done | failed
     sa.Column("attempts", sa.Integer, nullable=False),
     sa.Column("last_error", sa.Text),
     sa.Column("note", sa.Text),
-    sa.Column("owner", sa.String(200)),  # the lease owner of the latest attempt
+    sa.Column("owner", Label()),  # the lease owner of the latest attempt
     sa.Column("created_at", sa.DateTime(), nullable=False),
     sa.Column("started_at", sa.DateTime()),
     sa.Column("finished_at", sa.DateTime()),
@@ -160,15 +212,59 @@ ledger_t = sa.Table(
 
 leases_t = sa.Table(
     "sw_leases", metadata,
-    sa.Column("job", sa.String(200), primary_key=True),
+    sa.Column("job", Label(), primary_key=True),
     sa.Column("resource", sa.String(40), primary_key=True),  # a period identifier, or ~relay
-    sa.Column("owner", sa.String(200), nullable=False),
+    sa.Column("owner", Label(), nullable=False),
     sa.Column("acquired_at", sa.DateTime(), nullable=False),
     sa.Column("expires_at", sa.DateTime(), nullable=False),
 )
 
+schema_t = sa.Table(
+    "sw_schema", metadata,
+    sa.Column("name", sa.String(40), primary_key=True),  # always "history"
+    sa.Column("version", sa.Integer, nullable=False),
+    sa.Column("written_by", sa.String(40), nullable=False),  # the segwatch version that set it
+)
+
 #: Columns added after the first release: created on an existing table by :meth:`History.ensure`.
-_ADDED_COLUMNS = {"sw_outbox": ("next_attempt_at",)}
+_ADDED_COLUMNS = {"sw_outbox": ("next_attempt_at",), "sw_runs": ("settings",), "sw_metric_results": ("packed",)}
+
+#: The label columns, by table: widened to TEXT on an older PostgreSQL or MySQL/MariaDB history.
+_LABEL_COLUMNS = {
+    t.name: tuple(c.name for c in t.columns if isinstance(c.type, sa.String) and c.type.length in (200, 400)
+                  and c.name not in ("period", "resource"))
+    for t in metadata.sorted_tables
+}
+
+
+def _mysql_prefixes(table: sa.Table) -> dict[str, int]:
+    """Characters of each TEXT column a MySQL/MariaDB primary key indexes: the key's
+    3,072 bytes shared among its label columns (four bytes a character), after the fixed-width ones."""
+    cols = list(table.primary_key.columns)
+    labels = [c.name for c in cols
+              if isinstance(getattr(c.type, "_variant_mapping", {}).get("mysql", c.type), sa.Text)]
+    if not labels:
+        return {}
+    fixed = sum(4 * (getattr(c.type, "length", None) or 8) for c in cols if c.name not in labels)
+    share = min(768, (_MYSQL_KEY_BYTES - fixed) // (4 * len(labels)))
+    return {name: share for name in labels}
+
+
+@compiles(sa.PrimaryKeyConstraint, "mysql")
+@compiles(sa.PrimaryKeyConstraint, "mariadb")
+def _mysql_primary_key(constraint: sa.PrimaryKeyConstraint, compiler: Any, **kw: Any) -> str:
+    """``PRIMARY KEY (job(250), period, ...)``: MySQL/MariaDB index a TEXT column by a prefix.
+
+    Only the history's own tables; any other table's key is written as SQLAlchemy writes it.
+    """
+    table = constraint.table
+    if not len(constraint) or metadata.tables.get(table.name) is not table:
+        return compiler.visit_primary_key_constraint(constraint, **kw)
+    prefixes = _mysql_prefixes(table)
+    quote = compiler.preparer.quote
+    cols = ", ".join(quote(c.name) + (f"({prefixes[c.name]})" if c.name in prefixes else "")
+                     for c in constraint.columns)
+    return f"PRIMARY KEY ({cols})"
 
 
 @dataclass(frozen=True)
@@ -178,6 +274,19 @@ class StoredPeriod:
     period: str
     segments: tuple[str, ...]
     metrics: Mapping[str, dict[str, Any]]  # metric name -> its stored JSON entry
+    settings: RunSettings | None = None  # what its verdicts were judged by (None: not recorded)
+
+
+def _stored_run(r: Mapping[str, Any]) -> StoredRun:
+    raw = r.get("settings")
+    try:
+        settings = RunSettings.from_json(json.loads(raw)) if raw else None
+    except (ValueError, KeyError, TypeError) as exc:
+        raise HistoryError(f"the stored settings of period {r['period']} cannot be read ({exc}); "
+                           "the history may be damaged") from exc
+    return StoredRun(r["period"], r["period_start"], r["period_end"], iso_utc(utc_aware(r["computed_at"])),
+                     r["fingerprint"], int(r["rows"]), int(r["null_segment_rows"]), tuple(json.loads(r["segments"])),
+                     settings)
 
 
 @dataclass(frozen=True)
@@ -305,22 +414,64 @@ class History:
         self.job = job
         self.engine = engine or create_engine(url, "history")
         self._ready = False
+        self._layout: dict[str, set[str]] | None = None
 
     # -------------------------------------------------------------- set-up
 
     def ensure(self) -> None:
-        """Create the tables if they do not exist."""
+        """Make the history ready for writing: create the tables, or upgrade an older layout.
+
+        Raises :class:`HistoryError` for a history written by a newer segwatch (nothing
+        is changed) and when the tables cannot be created.
+        """
         if self._ready:
             return
         try:
             with _SCHEMA_LOCK:  # threads of one process (serve's tick and sweep) create tables one at a time
                 if self._ready:
                     return
+                version = self._version(sa.inspect(self.engine))
                 metadata.create_all(self.engine)
-                self._add_missing_columns()
+                if version is not None and version < SCHEMA_VERSION:
+                    self._upgrade(version)
+                if version != SCHEMA_VERSION:
+                    self._set_version()
         except SQLAlchemyError as exc:
             raise HistoryError(f"cannot create the history tables at {redact(self.url)}: {one_line(exc)}") from exc
         self._ready = True
+        self._layout = None
+
+    def _version(self, inspector: Any) -> int | None:
+        """The stored layout version: None for an empty database, 0 for tables without ``sw_schema``.
+
+        A version above :data:`SCHEMA_VERSION` raises :class:`HistoryError`.
+        """
+        names = set(inspector.get_table_names())
+        if "sw_schema" not in names:
+            return 0 if names & set(metadata.tables) else None
+        with self.engine.connect() as conn:
+            row = conn.execute(sa.select(schema_t.c.version, schema_t.c.written_by).where(
+                schema_t.c.name == "history")).one_or_none()
+        if row is None:
+            return 0
+        if row.version > SCHEMA_VERSION:
+            raise HistoryError(
+                f"the history at {redact(self.url)} has layout version {row.version}, written by segwatch "
+                f"{row.written_by}; this segwatch ({__version__}) reads up to version {SCHEMA_VERSION}: "
+                f"upgrade segwatch (pip install --upgrade segwatch) to use this history")
+        return int(row.version)
+
+    def _set_version(self) -> None:
+        with self.engine.begin() as conn:
+            conn.execute(sa.delete(schema_t).where(schema_t.c.name == "history"))
+            conn.execute(sa.insert(schema_t).values(name="history", version=SCHEMA_VERSION,
+                                                    written_by=str(__version__)[:40]))
+
+    def _upgrade(self, version: int) -> None:
+        """Bring a history of layout ``version`` to :data:`SCHEMA_VERSION` (nothing stored moves)."""
+        self._add_missing_columns()
+        self._widen_labels()
+        log.info("history %s: upgraded from layout version %s to %s", redact(self.url), version, SCHEMA_VERSION)
 
     def _add_missing_columns(self) -> None:
         """Add columns introduced after a history database was created (nullable, so no data moves)."""
@@ -335,6 +486,71 @@ class History:
                 with self.engine.begin() as conn:
                     conn.exec_driver_sql(ddl)
                 log.info("history %s: added column %s.%s", redact(self.url), table_name, name)
+
+    def _widen_labels(self) -> None:
+        """Label columns of an older PostgreSQL or MySQL/MariaDB history become TEXT (issue: a
+        300-character segment value stopped the job). SQLite does not enforce lengths."""
+        dialect = self.engine.dialect
+        if dialect.name not in ("postgresql", "mysql", "mariadb"):
+            return
+        inspector = sa.inspect(self.engine)
+        for table in metadata.sorted_tables:
+            names = [n for n in _LABEL_COLUMNS.get(table.name, ())
+                     if any(c["name"] == n and isinstance(c["type"], sa.String) and not isinstance(c["type"], sa.Text)
+                            for c in inspector.get_columns(table.name))]
+            if not names:
+                continue
+            q = dialect.identifier_preparer.quote
+            with self.engine.begin() as conn:
+                if dialect.name == "postgresql":
+                    conn.exec_driver_sql(f"ALTER TABLE {q(table.name)} "
+                                         + ", ".join(f"ALTER COLUMN {q(n)} TYPE TEXT" for n in names))
+                else:  # a key over a TEXT column needs prefixes: drop the keys, widen, key again
+                    present = {i["name"] for i in inspector.get_indexes(table.name)}
+                    indexes = [i for i in table.indexes if any(c.name in names for c in i.columns)]
+                    for ix in indexes:
+                        if ix.name in present:
+                            conn.exec_driver_sql(f"DROP INDEX {q(ix.name)} ON {q(table.name)}")
+                    keyed = any(c.name in names for c in table.primary_key.columns)
+                    parts = ["DROP PRIMARY KEY"] if keyed else []
+                    parts += [f"MODIFY {q(n)} TEXT{'' if table.c[n].nullable else ' NOT NULL'}" for n in names]
+                    if keyed:
+                        parts.append("ADD " + str(sa.schema.AddConstraint(table.primary_key).compile(
+                            dialect=dialect)).split(" ADD ", 1)[1])
+                    conn.exec_driver_sql(f"ALTER TABLE {q(table.name)} " + ", ".join(parts))
+                    for ix in indexes:
+                        conn.execute(sa.schema.CreateIndex(ix))
+            log.info("history %s: %s.%s now TEXT", redact(self.url), table.name, ", ".join(names))
+
+    def layout(self) -> dict[str, set[str]]:
+        """The history's tables and their columns, read without creating or changing anything.
+
+        Empty for a database without the history's tables. Raises :class:`HistoryError`
+        for a history written by a newer segwatch, or one that cannot be reached.
+        """
+        if self._layout is not None:
+            return self._layout
+        try:
+            inspector = sa.inspect(self.engine)
+            version = self._version(inspector)
+            layout = {} if version is None else {
+                name: {c["name"] for c in inspector.get_columns(name)}
+                for name in inspector.get_table_names() if name in metadata.tables}
+        except SQLAlchemyError as exc:
+            raise HistoryError(f"cannot read the history at {redact(self.url)}: {one_line(exc)}") from exc
+        if version == SCHEMA_VERSION and len(layout) == len(metadata.tables):
+            self._layout = layout  # complete and current: it can only be changed by a newer release
+        return layout
+
+    def readable(self, *tables: str) -> bool:
+        """Whether the history holds ``tables`` (default: the runs): reads return nothing otherwise."""
+        have = self.layout()
+        return all(t in have for t in (tables or ("sw_runs",)))
+
+    def _cols(self, table: sa.Table) -> list[sa.Column]:
+        """The columns of ``table`` this history has (an older layout lacks the later ones)."""
+        have = self.layout().get(table.name, set())
+        return [c for c in table.columns if c.name in have]
 
     def _begin(self):
         self.ensure()
@@ -359,8 +575,11 @@ class History:
         null_segment_rows: int,
         segments: Sequence[str],
         lease_owner: str | None = None,
+        settings: RunSettings | None = None,
     ) -> list[Event]:
         """Replace the period's results, reconcile its events and mark it done, in one transaction.
+
+        ``settings`` are what the verdicts were judged by (stored whole, as JSON, with the run).
 
         Returns the events that are new to this period (those not stored by an
         earlier run of the same period); only these get outbox rows. With
@@ -378,14 +597,10 @@ class History:
                     **key, period_start=period.start.isoformat(), period_end=period.end.isoformat(),
                     start_utc=_utc_naive(period.start), computed_at=now, fingerprint=fingerprint,
                     rows=rows, null_segment_rows=null_segment_rows, segments=json.dumps(list(segments)),
+                    settings=None if settings is None else json.dumps(settings.to_json(), separators=(",", ":")),
                 ))
-                if results:
+                if results:  # segments and pairs are stored once, in the metric's entry
                     conn.execute(sa.insert(metric_results), [_metric_row(key, r) for r in results])
-                job, ident = self.job, period.ident
-                _insert_rows(conn, segment_results,
-                             ("job", "period", "metric", "segment", "n", "mean", "sd", "flag"),
-                             [(job, ident, r.metric, s.segment, s.n, _fl(s.mean), _fl(s.sd), s.flag)
-                              for r in results for s in r.segments])
                 return self._reconcile_events(conn, period, events, channels, now)
         except LeaseLost:
             raise
@@ -483,7 +698,8 @@ class History:
 
     def alerts(self, statuses: Sequence[str] = ("pending", "dead")) -> list[AlertRow]:
         """Alerts in the given states, by channel and period (for ``segwatch alerts``)."""
-        self.ensure()
+        if not self.readable("sw_outbox", "sw_events"):
+            return []
         stmt = (
             sa.select(outbox.c.channel, outbox.c.status, outbox.c.attempts, outbox.c.last_error,
                       outbox.c.next_attempt_at, outbox.c.updated_at, outbox.c.event_key,
@@ -532,47 +748,91 @@ class History:
 
     def recent(self, period: Period, count: int) -> list[StoredPeriod]:
         """Up to ``count`` stored periods that start before ``period``, newest first."""
-        self.ensure()
-        with self.engine.connect() as conn:
-            found = conn.execute(
-                sa.select(runs.c.period, runs.c.segments)
-                .where(runs.c.job == self.job, runs.c.start_utc < _utc_naive(period.start))
-                .order_by(runs.c.start_utc.desc()).limit(count)
-            ).all()
-            if not found:
-                return []
-            payloads: dict[str, dict[str, Any]] = {p: {} for p, _ in found}
-            for r in conn.execute(
-                sa.select(metric_results.c.period, metric_results.c.metric, metric_results.c.payload).where(
-                    metric_results.c.job == self.job, metric_results.c.period.in_(list(payloads)))
-            ):
-                payloads[r.period][r.metric] = json.loads(r.payload)
-        return [StoredPeriod(p, tuple(json.loads(segs)), payloads[p]) for p, segs in found]
+        if not self.readable("sw_runs", "sw_metric_results"):
+            return []
+        found = self._runs(runs.c.start_utc < _utc_naive(period.start), newest_first=True, limit=count)
+        if not found:
+            return []
+        payloads: dict[str, dict[str, Any]] = {r.period: {} for r in found}
+        for p, entry in self._entries(metric_results.c.period.in_(list(payloads))):
+            payloads[p][entry["metric"]] = entry
+        return [StoredPeriod(r.period, r.segments, payloads[r.period], r.settings) for r in found]
+
+    def runs(self) -> list[StoredRun]:
+        """Every stored period of the job, oldest first, with the settings it was judged by."""
+        if not self.readable("sw_runs"):
+            return []
+        return self._runs()
+
+    def results(self, metric: str | None = None) -> list[StoredResult]:
+        """Stored metric verdicts, typed, oldest period first, each with the level it was judged at.
+
+        The level is the stored run's (``settings.fdr_level``); None for a period stored
+        before runs recorded their settings, whose verdicts are read as stored.
+        """
+        if not self.readable("sw_runs", "sw_metric_results"):
+            return []
+        levels = {r.period: r for r in self._runs()}
+        cond = metric_results.c.metric == metric if metric is not None else None
+        out = []
+        for p, entry in self._entries(cond):
+            run = levels.get(p)
+            settings = run.settings if run else None
+            ms = settings.metric(entry.get("metric")) if settings else None
+            out.append(StoredResult(p, MetricResult.from_json(entry, ms.requested if ms else None),
+                                    run.level if run else None))
+        return out
 
     def periods(self) -> list[dict[str, Any]]:
-        """Every stored period of the job, oldest first."""
-        self.ensure()
+        """Every stored period of the job as its stored row, oldest first (see :meth:`runs` for the typed form)."""
+        if not self.readable("sw_runs"):
+            return []
         with self.engine.connect() as conn:
             return [dict(r) for r in conn.execute(
-                sa.select(runs).where(runs.c.job == self.job).order_by(runs.c.start_utc)).mappings()]
+                sa.select(*self._cols(runs)).where(runs.c.job == self.job).order_by(runs.c.start_utc)).mappings()]
 
     def metric_history(self, metric: str | None = None) -> list[dict[str, Any]]:
-        """Stored metric entries (the ``run --json`` shape) with their period, oldest first."""
-        self.ensure()
+        """Stored metric entries (the ``run --json`` shape) with their period, oldest first
+        (see :meth:`results` for the typed form)."""
+        if not self.readable("sw_runs", "sw_metric_results"):
+            return []
+        cond = metric_results.c.metric == metric if metric is not None else None
+        return [{"period": p, **entry} for p, entry in self._entries(cond)]
+
+    def _runs(self, cond: Any = None, newest_first: bool = False, limit: int | None = None) -> list[StoredRun]:
+        cols = self._cols(runs)
+        stmt = sa.select(*cols).where(runs.c.job == self.job)
+        if cond is not None:
+            stmt = stmt.where(cond)
+        stmt = stmt.order_by(runs.c.start_utc.desc() if newest_first else runs.c.start_utc)
+        if limit is not None:
+            stmt = stmt.limit(limit)
+        with self.engine.connect() as conn:
+            rows = conn.execute(stmt).mappings().all()
+        return [_stored_run(r) for r in rows]
+
+    def _entries(self, cond: Any = None) -> list[tuple[str, dict[str, Any]]]:
+        """(period, stored entry) of the job's metric rows, oldest period first, packed ones unpacked."""
+        have = self.layout().get("sw_metric_results", set())
+        cols = [metric_results.c.period, metric_results.c.payload]
+        if "packed" in have:
+            cols.append(metric_results.c.packed)
         stmt = (
-            sa.select(metric_results.c.period, metric_results.c.payload)
+            sa.select(*cols)
             .join(runs, sa.and_(runs.c.job == metric_results.c.job, runs.c.period == metric_results.c.period))
             .where(metric_results.c.job == self.job)
             .order_by(runs.c.start_utc, metric_results.c.metric)
         )
-        if metric is not None:
-            stmt = stmt.where(metric_results.c.metric == metric)
+        if cond is not None:
+            stmt = stmt.where(cond)
         with self.engine.connect() as conn:
-            return [{"period": r.period, **json.loads(r.payload)} for r in conn.execute(stmt)]
+            return [(r.period, unpack_entry(r.payload, r.packed if "packed" in have else None))
+                    for r in conn.execute(stmt)]
 
     def events(self, period: str | None = None, include_ops: bool = True) -> list[dict[str, Any]]:
         """Stored events of the job (or of one period), operational ones (``op_...``) included unless asked."""
-        self.ensure()
+        if not self.readable("sw_events"):
+            return []
         stmt = sa.select(events_t).where(events_t.c.job == self.job)
         if period is not None:
             stmt = stmt.where(events_t.c.period == period)
@@ -583,7 +843,8 @@ class History:
             return [_event_dict(r) for r in conn.execute(stmt).mappings()]
 
     def outbox_counts(self) -> dict[str, int]:
-        self.ensure()
+        if not self.readable("sw_outbox"):
+            return {}
         with self.engine.connect() as conn:
             rows = conn.execute(
                 sa.select(outbox.c.status, sa.func.count()).where(outbox.c.job == self.job).group_by(outbox.c.status)
@@ -607,14 +868,35 @@ def _nulls_first_text() -> tuple:
 
 
 def _metric_row(key: Mapping[str, str], r: MetricResult) -> dict[str, Any]:
-    payload = r.to_json(pairs="significant")  # bounded: see monitor.model.PAIR_FORMS
+    payload = json.dumps(r.to_json(stored=True, pairs="significant"),  # bounded: see monitor.model.PAIR_FORMS
+                         separators=(",", ":"))
+    packed = None
+    if len(payload) > PACK_ABOVE:
+        packed = PACK_MARK + lzma.compress(payload.encode("utf-8"), format=lzma.FORMAT_RAW, filters=_PACK_FILTERS)
+        payload = json.dumps({"format": FORMAT, "metric": r.metric, "packed": "lzma"})
     eff = r.effect_size
     return {
         **key, "metric": r.metric, "method": r.method, "statistic": _fl(r.statistic),
         "p_value": _fl(r.p_value), "q_value": _fl(r.q_value), "significant": r.significant,
         "effect_name": eff.name if eff else None, "effect_value": _fl(eff.value) if eff else None,
-        "payload": json.dumps(payload, separators=(",", ":")),
+        "payload": payload, "packed": packed,
     }
+
+
+def unpack_entry(payload: str, packed: bytes | None) -> dict[str, Any]:
+    """A stored metric entry as JSON: the payload, or the packed entry it stands in for."""
+    if packed is None:
+        return json.loads(payload)
+    packed = bytes(packed)
+    if not packed.startswith(PACK_MARK):
+        raise HistoryError(f"a stored entry is packed as {packed[:4]!r}, which this segwatch does not read; "
+                           "upgrade segwatch to read this history")
+    try:
+        return json.loads(lzma.decompress(packed[len(PACK_MARK):], format=lzma.FORMAT_RAW, filters=_PACK_FILTERS))
+    except (lzma.LZMAError, ValueError) as exc:
+        stand_in = json.loads(payload) if payload else {}
+        raise HistoryError(f"the stored entry of metric {stand_in.get('metric')!r} cannot be unpacked ({exc}); "
+                           "the history may be damaged") from exc
 
 
 def _event_dict(r: Mapping[str, Any]) -> dict[str, Any]:
@@ -636,43 +918,6 @@ def _fl(x: Any) -> float | None:
         return None
     v = float(x)
     return v if math.isfinite(v) else None
-
-
-def _insert_rows(conn: sa.Connection, table: sa.Table, columns: Sequence[str],
-                 rows: Sequence[tuple]) -> None:
-    """Insert many rows (tuples in ``columns`` order) with one driver-level ``executemany``.
-
-    The same statement SQLAlchemy would send (compiled for this connection's dialect,
-    positional or named parameters as the driver wants) and the same per-column type
-    conversions (each column type's bind processor), without SQLAlchemy's per-row
-    parameter bookkeeping, which costs more than the insert itself for the tens of
-    thousands of pair rows of a large period.
-    """
-    if not rows:
-        return
-    dialect = conn.dialect
-    compiled = sa.insert(table).compile(dialect=dialect, column_keys=list(columns))
-    position = {name: i for i, name in enumerate(columns)}
-    names = list(compiled.positiontup) if compiled.positional else list(compiled.binds)
-    keys = [compiled.binds[name].key for name in names]
-    if set(keys) != set(columns):  # pragma: no cover - a statement shape this helper does not know
-        conn.execute(sa.insert(table), [dict(zip(columns, row)) for row in rows])
-        return
-    processors = [table.c[k].type.dialect_impl(dialect).bind_processor(dialect) for k in keys]
-    picks = [position[k] for k in keys]
-    if any(processors):  # column by column, as SQLAlchemy applies them (None included)
-        by_column = list(zip(*rows))
-        rows = list(zip(*(by_column[i] if f is None else list(map(f, by_column[i]))
-                          for f, i in zip(processors, picks))))
-    elif picks != list(range(len(columns))):
-        rows = [tuple(row[i] for i in picks) for row in rows]
-    if compiled.positional:
-        params: Sequence[Any] = rows
-    else:
-        escaped = getattr(compiled, "escaped_bind_names", None) or {}
-        bind_keys = [escaped.get(name, name) for name in names]
-        params = [dict(zip(bind_keys, row)) for row in rows]
-    conn.exec_driver_sql(compiled.string, params)
 
 
 def _receives(channels: Sequence[str] | Mapping[str, frozenset[str] | None], channel: str, kind: str) -> bool:

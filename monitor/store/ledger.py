@@ -190,14 +190,16 @@ class Ledger:
     # -------------------------------------------------------------- reads
 
     def entries(self) -> dict[str, LedgerEntry]:
-        """Every ledger row of the job, by period identifier."""
-        self.history.ensure()
+        """Every ledger row of the job, by period identifier (reading only: nothing is created)."""
+        if not self.history.readable("sw_ledger"):
+            return {}
         with self.history.engine.connect() as conn:
             rows = conn.execute(sa.select(ledger_t).where(ledger_t.c.job == self.job)).mappings().all()
         return {r["period"]: _entry(r) for r in rows}
 
     def entry(self, period: str) -> LedgerEntry | None:
-        self.history.ensure()
+        if not self.history.readable("sw_ledger"):
+            return None
         with self.history.engine.connect() as conn:
             row = conn.execute(sa.select(ledger_t).where(
                 ledger_t.c.job == self.job, ledger_t.c.period == period)).mappings().one_or_none()
@@ -205,7 +207,8 @@ class Ledger:
 
     def holder(self, resource: str) -> tuple[str, datetime] | None:
         """Who holds ``resource`` and until when, if anybody."""
-        self.history.ensure()
+        if not self.history.readable("sw_leases"):
+            return None
         with self.history.engine.connect() as conn:
             row = conn.execute(sa.select(leases_t.c.owner, leases_t.c.expires_at).where(
                 leases_t.c.job == self.job, leases_t.c.resource == resource)).one_or_none()
