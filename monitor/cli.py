@@ -22,6 +22,7 @@ from .errors import EXIT_BUSY, EXIT_EMPTY, EXIT_FAILED, SegwatchError, UsageErro
 from .redact import redact
 
 if TYPE_CHECKING:  # the command line imports the heavy modules only when a command needs them
+    from .model import MetricResult, StoredResult
     from .runner import PeriodReport
 
 log = logging.getLogger(__name__)
@@ -333,54 +334,61 @@ def cmd_history(args: argparse.Namespace, out: TextIO) -> int:
         if args.metric is not None and args.metric not in names:
             raise UsageError(
                 f"--metric: no metric {args.metric!r} in {cfg.path} (metrics: {', '.join(names)})")
-        entries = job.history.metric_history(args.metric)
+        results = job.history.results(args.metric)  # typed; each with the level its period was judged at
         events = job.history.events()
     fmt = "json" if args.json else args.format
     if fmt == "json":
-        json.dump({"job": cfg.job, "metrics": entries, "events": events}, out, indent=2)
+        json.dump({"job": cfg.job, "metrics": [r.to_json() for r in results], "events": events}, out, indent=2)
         out.write("\n")
         return 0
     if fmt == "jsonl":
-        for e in entries:
-            out.write(json.dumps({"record": "metric", "job": cfg.job, **e}, ensure_ascii=False) + "\n")
+        for r in results:
+            out.write(json.dumps({"record": "metric", "job": cfg.job, **r.to_json()}, ensure_ascii=False) + "\n")
         for ev in events:
             out.write(json.dumps({"record": "event", "job": cfg.job, **ev}, ensure_ascii=False, default=str) + "\n")
         return 0
     if fmt == "csv":
-        write_history_csv(cfg.job, entries, out)
+        write_history_csv(cfg.job, results, out)
         return 0
-    if not entries:
+    if not results:
         out.write(f"No stored periods for job {cfg.job} yet; run `segwatch run {args.config}` first.\n")
         return 0
     if args.metric:
-        out.write(render_metric_history(args.metric, entries))
+        out.write(render_metric_history(args.metric, results))
     else:
-        out.write(render_overview(cfg.job, entries, cfg.fdr.level))
+        out.write(render_overview(cfg.job, results))
     return 0
 
 
 HISTORY_CSV_COLUMNS = ("job", "period", "metric", "method", "statistic", "df_between", "df_within", "p_value",
                        "q_value", "significant", "effect", "effect_value", "segment", "n", "mean", "sd", "flag",
-                       "excluded")
+                       "excluded", "judged_at")
 
 
-def write_history_csv(job: str, entries: Sequence[dict[str, Any]], out: TextIO) -> None:
+def write_history_csv(job: str, results: Sequence[StoredResult], out: TextIO) -> None:
     """The stored history as CSV (RFC 4180), one row per period, metric and segment (a metric
-    without segments gets one row with the segment cells empty); labels exactly as stored."""
+    without segments gets one row with the segment cells empty); labels exactly as stored;
+    ``judged_at`` is the level the period was judged at (empty when not recorded)."""
     import csv
 
     writer = csv.writer(out, lineterminator="\r\n")
     writer.writerow(HISTORY_CSV_COLUMNS)
-    for e in entries:
-        df = list(e.get("df") or []) + [None, None]
-        eff = e.get("effect_size") or {}
-        head = [job, e["period"], e["metric"], e.get("method"), e.get("statistic"), df[0], df[1], e.get("p_value"),
-                e.get("q_value"), e.get("significant"), eff.get("name"), eff.get("value")]
-        segments = e.get("segments") or [{}]
-        for seg in segments:
-            writer.writerow(["" if v is None else v for v in head + [
-                seg.get("segment"), seg.get("n"), seg.get("mean"), seg.get("sd"), seg.get("flag"),
-                seg.get("excluded")]])
+    for sr in results:
+        r = sr.result
+        df = list(r.df) + [None, None]
+        eff = r.effect_size
+        head = [job, sr.period, r.metric, r.method, _cell(r.statistic), _cell(df[0]), _cell(df[1]),
+                _cell(r.p_value), _cell(r.q_value), r.significant, eff.name if eff else None,
+                _cell(eff.value) if eff else None]
+        for seg in r.segments or (None,):
+            tail = [None] * 6 if seg is None else [seg.segment, seg.n, _cell(seg.mean), _cell(seg.sd), seg.flag,
+                                                   seg.excluded]
+            writer.writerow(["" if v is None else v for v in head + tail + [_cell(sr.judged_at)]])
+
+
+def _cell(x: Any) -> Any:
+    """A number for a table cell: None for NaN (an empty cell), else as stored."""
+    return None if x is None or (isinstance(x, float) and not math.isfinite(x)) else x
 
 
 def cmd_check(args: argparse.Namespace, out: TextIO) -> int:
@@ -666,10 +674,9 @@ def _runs(idents: Sequence[str], most: int = 6) -> str:
     return shown + (f" +{len(idents) - most} more" if len(idents) > most else "")
 
 
-def _marks(e: dict[str, Any]) -> str:
-    """Two marker characters for a stored entry: * significant, ! a watched check fails."""
-    failing = any(c.get("watched") and c.get("passed") is False for c in (e.get("assumptions") or {}).values())
-    return ("*" if e.get("significant") else " ") + ("!" if failing else " ")
+def _marks(r: MetricResult) -> str:
+    """Two marker characters for a stored verdict: * significant (as judged when stored), ! a watched check fails."""
+    return ("*" if r.significant else " ") + ("!" if r.watched_failing else " ")
 
 
 def _decimals(values: Sequence[Any]) -> int:
@@ -693,56 +700,74 @@ def _grid(header: Sequence[str], rows: Sequence[Sequence[str]], right: Sequence[
     return "\n".join([line(header), "  ".join("-" * w for w in widths), *(line(r) for r in rows)]) + "\n"
 
 
-def render_overview(job: str, entries: Sequence[dict[str, Any]], level: float) -> str:
+def render_overview(job: str, results: Sequence[StoredResult]) -> str:
     """Metrics x periods: one row per stored period, one column per metric, the q-value
-    in each cell with * where the metric differs and ! where a watched check fails."""
-    periods = list(dict.fromkeys(e["period"] for e in entries))
-    metrics = sorted(dict.fromkeys(e["metric"] for e in entries))
-    cell = {(e["metric"], e["period"]): e for e in entries}
+    in each cell with * where the metric differs and ! where a watched check fails.
+
+    A verdict is the one stored, judged at its period's own level: one level for all
+    periods is named in the legend, else a ``level`` column gives each period's
+    (``?`` for a period stored before runs recorded their settings)."""
+    periods = list(dict.fromkeys(r.period for r in results))
+    metrics = sorted(dict.fromkeys(r.metric for r in results))
+    cell = {(r.metric, r.period): r for r in results}
+    level = {r.period: r.judged_at for r in results}
+    levels = set(level.values())
+    one = next(iter(levels)) if len(levels) == 1 and None not in levels else None
     rows = []
     for p in periods:
-        row = [p]
+        row = [p] if one is not None else [p, "?" if level[p] is None else f"{level[p]:g}"]
         for m in metrics:
-            e = cell.get((m, p))
-            row.append("." if e is None else _p(e.get("q_value")) + _marks(e))
-        n_sig = sum(1 for m in metrics if (cell.get((m, p)) or {}).get("significant"))
+            r = cell.get((m, p))
+            row.append("." if r is None else _p(r.result.q_value) + _marks(r.result))
+        n_sig = sum(1 for m in metrics if (m, p) in cell and cell[(m, p)].result.significant)
         row.append(str(n_sig) if n_sig else "")
         rows.append(row)
-    legend = (f"q-value by period; * differs (q <= {level:g}), ! a watched assumption check fails, "
-              ". not stored")
+    if one is not None:
+        judged = f"* differs (q <= {one:g}) at the level stored with every period"
+    else:
+        judged = ("* differs (q at or below the level its period was judged at, column level; "
+                  "? a period stored without its settings: its stored verdict)")
+    legend = f"q-value by period; {judged}, ! a watched assumption check fails, . not stored"
     foot = (f"\n{len(periods)} periods, {periods[0]} to {periods[-1]}. One metric segment by segment: "
             "--metric NAME; everything: --json.\n") if periods else ""
+    head = ["period"] + ([] if one is not None else ["level"])
     return (f"{job}: {legend}\n\n"
-            + _grid(["period", *metrics, "differ"], rows, right=range(1, len(metrics) + 2)) + foot)
+            + _grid([*head, *metrics, "differ"], rows, right=range(len(head), len(head) + len(metrics) + 1)) + foot)
 
 
-def render_metric_history(metric: str, entries: Sequence[dict[str, Any]]) -> str:
+def render_metric_history(metric: str, results: Sequence[StoredResult]) -> str:
     """Segments x periods for one metric: one row per stored period, one column per
     segment with its mean (▲/▼ where it stands above/below the rest), plus the test,
-    the q-value with * / ! as in the overview, and the watched checks that fail."""
-    if not entries:
+    the q-value with * / ! as in the overview (each period judged at its own stored
+    level, shown beside it), and the watched checks that fail."""
+    if not results:
         return ""
-    segs = sorted({s["segment"] for e in entries for s in e.get("segments", [])})
-    places = _decimals([s.get("mean") for e in entries for s in e.get("segments", [])])
+    segs = sorted({s.segment for r in results for s in r.result.segments})
+    places = _decimals([s.mean for r in results for s in r.result.segments])
+    levels = {sr.judged_at for sr in results}
+    one = next(iter(levels)) if len(levels) == 1 and None not in levels else None
     rows = []
-    for e in entries:
-        by = {s["segment"]: s for s in e.get("segments", [])}
-        row = [e["period"], e.get("method") or "-", _p(e.get("q_value")) + _marks(e)]
+    for sr in results:
+        r = sr.result
+        by = {s.segment: s for s in r.segments}
+        row = [sr.period, r.method or "-", _p(r.q_value) + _marks(r)]
+        if one is None:
+            row.append("?" if sr.judged_at is None else f"{sr.judged_at:g}")
         for s in segs:
             x = by.get(s)
             if x is None:
                 row.append(".")
                 continue
-            mean = x.get("mean")
-            text = f"{mean:.{places}f}" if isinstance(mean, (int, float)) and math.isfinite(mean) else "-"
-            mark = {"high": "▲", "low": "▼"}.get(x.get("flag") or "", " ")
-            row.append(text + ("~" if x.get("excluded") else mark))
-        failing = [k for k, c in (e.get("assumptions") or {}).items() if c.get("watched") and c.get("passed") is False]
-        row.append(", ".join(failing))
+            text = f"{x.mean:.{places}f}" if math.isfinite(x.mean) else "-"
+            mark = {"high": "▲", "low": "▼"}.get(x.flag or "", " ")
+            row.append(text + ("~" if x.excluded else mark))
+        row.append(", ".join(r.watched_failing))
         rows.append(row)
+    judged = (f"q <= {one:g}, the level stored with every period" if one is not None else
+              "q at or below the level its period was judged at, column level; ? not recorded")
     legend = ("mean per segment and period; ▲/▼ stands above/below the rest, ~ left out (too few values), "
-              ". no records; q: * differs, ! a watched check fails")
-    unit = next((e.get("unit") for e in entries if e.get("unit")), None)
+              f". no records; q: * differs ({judged}), ! a watched check fails")
+    unit = next((r.result.unit for r in results if r.result.unit), None)
+    head = ["period", "test", "q"] + ([] if one is not None else ["level"])
     return (f"{metric}{f' ({unit})' if unit else ''}: {legend}\n\n"
-            + _grid(["period", "test", "q", *segs, "failing checks"], rows, right=range(2, len(segs) + 3))
-            + f"\n{len(entries)} periods, {entries[0]['period']} to {entries[-1]['period']}.\n")
+            + _grid([*head, *segs, "failing checks"], rows, right=range(2, len(segs) + len(head))))

@@ -28,6 +28,7 @@ import sqlite3
 import statistics
 import subprocess
 import sys
+from dataclasses import replace
 from datetime import datetime, timedelta
 from html.parser import HTMLParser
 from pathlib import Path
@@ -299,19 +300,20 @@ def test_reference_metric_against_the_reference(toy: Path, toy_html: str):
         def __init__(self, real):
             self.real = real
 
-        def periods(self):
-            return self.real.periods()
+        def runs(self):
+            return self.real.runs()
 
         def events(self, period=None):
             return self.real.events(period)
 
-        def metric_history(self, metric=None):
-            out = self.real.metric_history(metric)
-            for e in out:
-                if e["metric"] == "cost":
-                    e["posthoc"] = "dunnett"
-                    for p in e["pairs"]:
-                        p.update(ratio=1.5, ratio_low=1.2, ratio_high=1.9)
+        def results(self, metric=None):
+            out = []
+            for sr in self.real.results(metric):
+                if sr.metric == "cost":  # ratios are read from the differences of logs
+                    pairs = tuple(replace(p, diff=math.log(1.5), ci_low=math.log(1.2), ci_high=math.log(1.9),
+                                          log_scale=True) for p in sr.result.pairs)
+                    sr = replace(sr, result=replace(sr.result, posthoc="dunnett", pairs=pairs))
+                out.append(sr)
             return out
 
     with Job(cfg) as job:
@@ -326,18 +328,15 @@ def test_missing_quantiles_fall_back_to_mean_and_sd(toy: Path):
         def __init__(self, real):
             self.real = real
 
-        def periods(self):
-            return self.real.periods()
+        def runs(self):
+            return self.real.runs()
 
         def events(self, period=None):
             return self.real.events(period)
 
-        def metric_history(self, metric=None):
-            out = self.real.metric_history(metric)
-            for e in out:
-                for s in e["segments"]:
-                    s.pop("quantiles", None)
-            return out
+        def results(self, metric=None):
+            return [replace(sr, result=replace(sr.result, segments=tuple(
+                replace(s, quantiles=()) for s in sr.result.segments))) for sr in self.real.results(metric)]
 
     cfg = load_config(toy)
     with Job(cfg) as job:
@@ -352,21 +351,20 @@ def test_a_metric_that_could_not_be_computed(toy: Path):
         def __init__(self, real):
             self.real = real
 
-        def periods(self):
-            return self.real.periods()
+        def runs(self):
+            return self.real.runs()
 
         def events(self, period=None):
             return self.real.events(period)
 
-        def metric_history(self, metric=None):
-            out = self.real.metric_history(metric)
-            for e in out:
-                if e["metric"] == "wait" and e["period"] == "2026-W13":
-                    e.update(statistic=None, p_value=None, q_value=None, significant=False, effect_size=None,
-                             pairs=[], assumptions={}, method_reason="not computed: fewer than two segments "
-                             "have enough values to compare", note="fewer than two segments have enough values "
-                             "to compare", df=[None])
-            return out
+        def results(self, metric=None):
+            nan = float("nan")
+            return [replace(sr, result=replace(
+                sr.result, statistic=nan, p_value=nan, q_value=nan, significant=False, effect_size=None,
+                pairs=(), assumptions={}, relevant_checks=(),
+                method_reason="not computed: fewer than two segments have enough values to compare",
+                note="fewer than two segments have enough values to compare", df=(nan,)))
+                if sr.metric == "wait" and sr.period == "2026-W13" else sr for sr in self.real.results(metric)]
 
     cfg = load_config(toy)
     with Job(cfg) as job:

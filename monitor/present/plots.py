@@ -386,11 +386,13 @@ Q_FLOOR = 1e-12
 
 def qvalue_svg(periods: Sequence[str], q: Sequence[float], level: float,
                events: Sequence[tuple[int, str]], *, key: str, label: str,
-               failing: Sequence[bool] = ()) -> str:
+               failing: Sequence[bool] = (), significant: Sequence[bool] | None = None) -> str:
     """The q-value per period on a log scale (values below 1e-12 drawn at 1e-12), the
-    false-discovery level as a dashed line, filled dots where significant, a light
-    band behind the periods where a watched assumption check failed, and a strip of
-    event markers above the chart (one marker per kind per period)."""
+    false-discovery level as a dashed line (none when ``level`` is NaN: not recorded),
+    filled dots where significant (``significant``: each period's stored verdict;
+    default q at or below ``level``), a light band behind the periods where a watched
+    assumption check failed, and a strip of event markers above the chart (one marker
+    per kind per period)."""
     with _LOCK, matplotlib.rc_context(RC):
         fig = _figure(8.4, 2.7, right=0.5, top=0.05, bottom=0.62, hspace=0.08)
         strip, ax = fig.subplots(2, 1, sharex=True, height_ratios=[0.5, 5])
@@ -400,19 +402,24 @@ def qvalue_svg(periods: Sequence[str], q: Sequence[float], level: float,
         xs = list(range(len(periods)))
         ys = [max(v, Q_FLOOR) if _finite(v) else math.nan for v in q]
         finite = [y for y in ys if _finite(y)]
-        bottom = min([level / 10, *finite]) / 3 if finite else level / 100
+        has_level = _finite(level)
+        floor = [level / 10] if has_level else []
+        bottom = min([*floor, *finite]) / 3 if finite else (level / 100 if has_level else 1e-3)
+        if significant is None:
+            significant = [_finite(v) and has_level and v <= level for v in ys]
         ax.set_ylim(bottom, 1.6)
         shaded = False
         for i, bad in enumerate(failing):
             if bad:
                 ax.axvspan(i - 0.5, i + 0.5, color="#fbe9c6", linewidth=0, zorder=0)
                 shaded = True
-        ax.axhline(level, color=HIGH, linestyle=(0, (5, 3)), linewidth=1.2, zorder=2)
-        ax.annotate(f"level\n{level:g}", (1, level), xytext=(5, 0), textcoords="offset points",
-                    xycoords=("axes fraction", "data"), color=HIGH, ha="left", va="center", fontsize=8)
+        if has_level:
+            ax.axhline(level, color=HIGH, linestyle=(0, (5, 3)), linewidth=1.2, zorder=2)
+            ax.annotate(f"level\n{level:g}", (1, level), xytext=(5, 0), textcoords="offset points",
+                        xycoords=("axes fraction", "data"), color=HIGH, ha="left", va="center", fontsize=8)
         ax.plot(xs, ys, color=LOW, linewidth=1.4, zorder=3)
         for sig in (True, False):
-            pts = [(x, y) for x, y in zip(xs, ys) if _finite(y) and (y <= level) == sig]
+            pts = [(x, y) for x, y, s in zip(xs, ys, significant) if _finite(y) and bool(s) == sig]
             if pts:
                 ax.plot([x for x, _ in pts], [y for _, y in pts], marker="o", markersize=5, linestyle="none",
                         zorder=4, markeredgecolor=LOW, markerfacecolor=LOW if sig else "white",

@@ -47,7 +47,7 @@ import logging
 import math
 import os
 import tempfile
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Mapping, Protocol, Sequence
@@ -56,7 +56,7 @@ from scipy import stats as sps
 
 from .. import __version__, methods
 from . import plots
-from ..model import QUANTILE_KEYS
+from ..model import QUANTILE_KEYS, StoredResult, StoredRun
 from ..config import JobConfig, MetricConfig
 from ..redact import redact
 from ..errors import SegwatchError, UsageError
@@ -98,7 +98,13 @@ MATRIX_MAX = 24  # above this many segments the pair matrix becomes a list of si
 
 @dataclass(frozen=True)
 class ReportData:
-    """Everything the page shows, read from the history in one go."""
+    """Everything the page shows, read from the history in one go (typed, as stored).
+
+    Every verdict is shown as it was judged when stored: the level and the adjustment
+    method are the stored run's (:attr:`StoredRun.settings`), never today's config; a
+    period stored before runs recorded their settings shows its stored verdicts and
+    says that the level was not recorded.
+    """
 
     job: str
     config_path: str
@@ -106,19 +112,29 @@ class ReportData:
     period_kind: str
     timezone: str
     segment_word: str
-    fdr_method: str
-    fdr_level: float
-    run: Mapping[str, Any]  # the stored run row of the period
+    run: StoredRun  # the stored run of the period
     window: tuple[str, ...]  # stored periods in the trend pictures, oldest first, ending at the period
-    metrics: tuple[dict[str, Any], ...]  # this period's stored entries, sorted by q-value
-    trail: Mapping[str, tuple[dict[str, Any], ...]]  # metric -> stored entries over the window
+    results: tuple[StoredResult, ...]  # this period's stored verdicts, sorted by q-value
+    trail_results: Mapping[str, tuple[StoredResult, ...]]  # metric -> stored verdicts over the window
     events_now: tuple[dict[str, Any], ...]
     events_window: tuple[dict[str, Any], ...]
     metric_config: Mapping[str, MetricConfig]
+    metrics: tuple[dict[str, Any], ...] = ()  # the JSON form of ``results`` (filled by :func:`collect`)
+    trail: Mapping[str, tuple[dict[str, Any], ...]] = field(default_factory=dict)  # ... of ``trail_results``
 
     @property
     def period(self) -> str:
-        return str(self.run["period"])
+        return self.run.period
+
+    @property
+    def fdr_level(self) -> float | None:
+        """The level this period's verdicts were judged at (None: not recorded when stored)."""
+        return self.run.level
+
+    @property
+    def fdr_method(self) -> str | None:
+        """The adjustment across metrics this period was judged with (None: not recorded)."""
+        return self.run.settings.fdr_method if self.run.settings is not None else None
 
 
 def collect(history: "History", config: JobConfig, period: Period | str | None = None,
@@ -134,13 +150,13 @@ def collect(history: "History", config: JobConfig, period: Period | str | None =
     ident = period.ident if isinstance(period, Period) else period
     if ident is not None:  # a malformed identifier says so (PeriodError, exit 2) before the lookup
         ident = parse_period(config.period, ident, config.timezone).ident
-    stored = history.periods()
+    stored = history.runs()
     cfg_arg = str(config.path)
     if not stored:
         raise UsageError(
             f"no stored periods for job {config.job} in the history at {redact(config.history.url)}; "
             f"run `segwatch run {cfg_arg}` (or `segwatch backfill`) first")
-    idents = [str(r["period"]) for r in stored]
+    idents = [r.period for r in stored]
     if ident is None:
         pos = len(stored) - 1
     elif ident in idents:
@@ -152,24 +168,27 @@ def collect(history: "History", config: JobConfig, period: Period | str | None =
     run = stored[pos]
     window = tuple(idents[max(0, pos - count + 1):pos + 1])
     inside = set(window)
-    entries = [e for e in history.metric_history(None) if e["period"] in inside]
-    now = [e for e in entries if e["period"] == run["period"]]
-    now.sort(key=lambda e: (_sort_q(e.get("q_value")), e["metric"]))
-    trail: dict[str, list[dict[str, Any]]] = {e["metric"]: [] for e in now}
-    for e in entries:
-        if e["metric"] in trail:
-            trail[e["metric"]].append(e)
+    entries = [r for r in history.results(None) if r.period in inside]
+    now = [r for r in entries if r.period == run.period]
+    now.sort(key=lambda r: (_sort_q(r.result.q_value), r.metric))
+    trail: dict[str, list[StoredResult]] = {r.metric: [] for r in now}
+    for r in entries:
+        if r.metric in trail:
+            trail[r.metric].append(r)
     events_window = tuple(e for e in history.events() if e["period"] in inside
                           and not str(e["kind"]).startswith("op_"))  # operational events are not about the data
-    events_now = tuple(sorted((e for e in events_window if e["period"] == run["period"]),
+    events_now = tuple(sorted((e for e in events_window if e["period"] == run.period),
                               key=lambda e: (_kind_rank(e["kind"]), e["metric"] or "", e["segment"] or "")))
+    trail_results = {k: tuple(v) for k, v in trail.items()}
+    as_json = {id(r): r.to_json() for r in entries}
     return ReportData(
         job=config.job, config_path=cfg_arg, history_url=redact(config.history.url),
         period_kind=config.period, timezone=config.timezone, segment_word=config.source.segment_column,
-        fdr_method=config.fdr.method, fdr_level=config.fdr.level, run=run, window=window,
-        metrics=tuple(now), trail={k: tuple(v) for k, v in trail.items()},
+        run=run, window=window, results=tuple(now), trail_results=trail_results,
         events_now=events_now, events_window=events_window,
         metric_config={m.name: m for m in config.metrics},
+        metrics=tuple(as_json[id(r)] for r in now),
+        trail={k: tuple(as_json[id(r)] for r in v) for k, v in trail_results.items()},
     )
 
 
@@ -380,9 +399,9 @@ def _when(iso: str) -> str:
 def _masthead(d: ReportData) -> str:
     word = PERIOD_WORDS.get(d.period_kind, "period")
     run = d.run
-    segs = _segments_of(run)
-    sig = [m for m in d.metrics if m.get("significant")]
-    computed = [m for m in d.metrics if _ok(m.get("p_value"))]
+    segs = run.segments
+    sig = [m for m in d.metrics if m["significant"]]
+    computed = [r for r in d.results if r.result.computed]
     if sig:
         names = ", ".join(f"<a href=\"#{_anchor(m['metric'])}\">{_e(_display(m, d.metric_config.get(m['metric'])))}</a>"
                           for m in sig)
@@ -396,24 +415,22 @@ def _masthead(d: ReportData) -> str:
     lede += (f" {n_ev} event{'s' if n_ev != 1 else ''} this {word}." if n_ev
              else " Nothing changed since the previous stored period.")
     method = {"bh": "Benjamini-Hochberg", "by": "Benjamini-Yekutieli", "holm": "Holm",
-              "bonferroni": "Bonferroni", "none": "no adjustment"}.get(d.fdr_method, d.fdr_method)
+              "bonferroni": "Bonferroni", "none": "no adjustment", None: "a method not recorded"}.get(
+        d.fdr_method, d.fdr_method)
     return (
         "<header class=\"masthead\">\n"
         f"<p class=\"eyebrow\">segwatch report · job <strong>{_e(d.job)}</strong></p>\n"
         f"<h1>{_e(word.capitalize())} {_e(d.period)}</h1>\n"
-        f"<p class=\"window\">{_when(run.get('period_start', ''))} to {_when(run.get('period_end', ''))}, "
-        f"{_e(d.timezone)} · {num(run.get('rows'), decimals=0)} rows · {len(segs)} segments ({_e(d.segment_word)}) · "
-        f"q-values by {_e(method)}, level {lvl(d.fdr_level)}</p>\n"
+        f"<p class=\"window\">{_when(run.period_start)} to {_when(run.period_end)}, "
+        f"{_e(d.timezone)} · {num(run.rows, decimals=0)} rows · {len(segs)} segments ({_e(d.segment_word)}) · "
+        f"q-values by {_e(method)}, {_level_words(d.fdr_level)}</p>\n"
         f"<p class=\"lede\">{lede}</p>\n</header>"
     )
 
 
-def _segments_of(run: Mapping[str, Any]) -> list[str]:
-    raw = run.get("segments")
-    try:
-        return list(json.loads(raw)) if isinstance(raw, str) else list(raw or [])
-    except ValueError:
-        return []
+def _level_words(level: float | None) -> str:
+    """How the page names the level a period was judged at."""
+    return f"level {lvl(level)}" if level is not None else "level not recorded (stored before runs kept their settings)"
 
 
 def _anchor(metric: str) -> str:
@@ -538,7 +555,10 @@ def _overview(d: ReportData) -> str:
         "<section id=\"metrics\" aria-labelledby=\"metrics-h\">\n"
         "<h2 id=\"metrics-h\">All metrics, smallest q-value first</h2>\n"
         f"<p class=\"hint\">q is p adjusted across the {len(d.metrics)} metrics of the period; a metric "
-        f"differs when q is at most {lvl(d.fdr_level)}. A {_e(d.segment_word)} can stand apart only inside a metric "
+        + (f"differs when q is at most {lvl(d.fdr_level)} (the level this period was judged at). "
+           if d.fdr_level is not None else
+           "differs as judged when it was stored (the level was not recorded then). ")
+        + f"A {_e(d.segment_word)} can stand apart only inside a metric "
         "that differs. Watched checks decide the method and raise events; the others are shown for "
         "information. The second line of each metric says which test was used and why.</p>\n"
         f"<div class=\"scroll\"><table class=\"overview\">\n<thead>{head}</thead>\n"
@@ -598,7 +618,9 @@ def _summary(d: ReportData, m: Mapping[str, Any], decimals: int | None) -> str:
     if not _ok(m.get("p_value")):
         return f"Not computed this {word}: {_e(m.get('note') or 'no reason stored')}."
     if m.get("significant"):
-        text = f"It differs by {seg} this {word} (q {pval(q)}, at or below {lvl(d.fdr_level)})."
+        text = (f"It differs by {seg} this {word} (q {pval(q)}, at or below {lvl(d.fdr_level)}, the level it was "
+                f"judged at)." if d.fdr_level is not None else
+                f"It differs by {seg} this {word} (q {pval(q)}; judged so when stored, at a level not recorded).")
         sc = _scale(d.metric_config.get(m["metric"]))
         for s in m.get("segments", []):
             if s.get("flag") in ("high", "low") and _ok(s.get("mean")) and _ok(s.get("diff_vs_rest")):
@@ -609,7 +631,9 @@ def _summary(d: ReportData, m: Mapping[str, Any], decimals: int | None) -> str:
         if not _flagged(m):
             text += f" No single {seg} stands apart from most of the others."
         return text
-    return f"No clear difference by {seg} this {word} (q {pval(q)}, above {lvl(d.fdr_level)})."
+    if d.fdr_level is None:
+        return f"No clear difference by {seg} this {word} (q {pval(q)}; judged so when stored, at a level not recorded)."
+    return f"No clear difference by {seg} this {word} (q {pval(q)}, above {lvl(d.fdr_level)}, the level it was judged at)."
 
 
 def _facts(d: ReportData, m: Mapping[str, Any]) -> str:
@@ -830,25 +854,34 @@ def _trend_summary(series: Mapping[str, Sequence[plots.Point]], window: Sequence
 
 
 def _q_figure(d: ReportData, m: Mapping[str, Any], key: str) -> str:
-    trail = d.trail.get(m["metric"], ())
+    trail = d.trail_results.get(m["metric"], ())
     if not trail:
         return ""
     window = list(d.window)
     pos = {p: i for i, p in enumerate(window)}
     q = [math.nan] * len(window)
-    for e in trail:
-        q[pos[e["period"]]] = _f(e.get("q_value"))
+    verdict = [False] * len(window)  # each period's verdict as stored, at the level it was judged at
+    failing = [False] * len(window)
+    for sr in trail:
+        i = pos[sr.period]
+        q[i] = sr.result.q_value
+        verdict[i] = sr.result.significant
+        failing[i] = bool(sr.result.watched_failing)
     marks = [(pos[e["period"]], e["kind"]) for e in d.events_window
              if e.get("metric") == m["metric"] and e["kind"] in plots.EVENT_STYLE]
     name = _display(m, d.metric_config.get(m["metric"]))
-    label = f"{name}: q-value per period on a log scale, {window[0]} to {window[-1]}, level {lvl(d.fdr_level)}"
-    failing = [False] * len(window)
-    for e in trail:
-        failing[pos[e["period"]]] = any(c.get("watched") and c.get("passed") is False
-                                        for c in (e.get("assumptions") or {}).values())
-    svg = plots.qvalue_svg(window, q, d.fdr_level, marks, key=f"{key}q", label=label, failing=failing)
-    below = [window[i] for i, v in enumerate(q) if _ok(v) and v <= d.fdr_level]
-    text = f"q at or below {lvl(d.fdr_level)} in {len(below)} of {sum(1 for v in q if _ok(v))} stored periods"
+    level = d.fdr_level
+    label = f"{name}: q-value per period on a log scale, {window[0]} to {window[-1]}, {_level_words(level)}"
+    svg = plots.qvalue_svg(window, q, math.nan if level is None else level, marks, key=f"{key}q", label=label,
+                           failing=failing, significant=verdict)
+    below = [window[i] for i, v in enumerate(q) if _ok(v) and verdict[i]]
+    levels = {sr.judged_at for sr in trail}
+    if len(levels) == 1 and level is not None:
+        text = f"q at or below {lvl(level)} in {len(below)} of {sum(1 for v in q if _ok(v))} stored periods"
+    else:
+        text = (f"Differing, each period judged at its own stored level (dashed: this {_e(d.period)}'s"
+                f"{'' if level is not None else ', not recorded'}), in {len(below)} of "
+                f"{sum(1 for v in q if _ok(v))} stored periods")
     text += f" (first {below[0]}, last {below[-1]})." if below else "."
     if any(_ok(v) and v < plots.Q_FLOOR for v in q):
         text += f" Values below {plots.Q_FLOOR:g} are drawn at {plots.Q_FLOOR:g}."
@@ -976,8 +1009,10 @@ def _reference_table(m: Mapping[str, Any], decimals: int | None, level: float, s
 
 
 def _footer(d: ReportData) -> str:
-    computed = d.run.get("computed_at")
-    when = computed.strftime("%Y-%m-%d %H:%M UTC") if isinstance(computed, datetime) else _e(computed or "")
+    try:
+        when = datetime.fromisoformat((d.run.computed_at or "").replace("Z", "+00:00")).strftime("%Y-%m-%d %H:%M UTC")
+    except ValueError:
+        when = _e(d.run.computed_at or "")
     return (f"<footer><p>Written by segwatch {_e(__version__)} from the history at {_e(d.history_url)} "
             f"(job {_e(d.job)}, config {_e(d.config_path)}); the period was computed {when}. "
             "Nothing on this page is fetched from elsewhere.</p></footer>")
