@@ -260,10 +260,13 @@ def _mysql_primary_key(constraint: sa.PrimaryKeyConstraint, compiler: Any, **kw:
     table = constraint.table
     if not len(constraint) or metadata.tables.get(table.name) is not table:
         return compiler.visit_primary_key_constraint(constraint, **kw)
+    return _mysql_key_text(table, compiler.preparer.quote)
+
+
+def _mysql_key_text(table: sa.Table, quote: Any) -> str:
     prefixes = _mysql_prefixes(table)
-    quote = compiler.preparer.quote
     cols = ", ".join(quote(c.name) + (f"({prefixes[c.name]})" if c.name in prefixes else "")
-                     for c in constraint.columns)
+                     for c in table.primary_key.columns)
     return f"PRIMARY KEY ({cols})"
 
 
@@ -514,9 +517,8 @@ class History:
                     keyed = any(c.name in names for c in table.primary_key.columns)
                     parts = ["DROP PRIMARY KEY"] if keyed else []
                     parts += [f"MODIFY {q(n)} TEXT{'' if table.c[n].nullable else ' NOT NULL'}" for n in names]
-                    if keyed:
-                        parts.append("ADD " + str(sa.schema.AddConstraint(table.primary_key).compile(
-                            dialect=dialect)).split(" ADD ", 1)[1])
+                    if keyed:  # written here: sa.schema.AddConstraint would drop the key from later CREATE TABLEs
+                        parts.append("ADD " + _mysql_key_text(table, q))
                     conn.exec_driver_sql(f"ALTER TABLE {q(table.name)} " + ", ".join(parts))
                     for ix in indexes:
                         conn.execute(sa.schema.CreateIndex(ix))
