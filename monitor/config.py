@@ -572,6 +572,10 @@ def _metrics(r: _Reader, top: dict, source: SourceConfig) -> tuple[MetricConfig,
             label=r.text(spec, "label", path, "a display label", default=None),
             adjust_for=_adjust_for(r, spec, path, column, source),
         ))
+        chosen = metrics[-1]
+        if chosen.test != methods.AUTO and chosen.transform != "none" and not methods.get(chosen.test).transforms:
+            r.fail(f"{path}.transform", f"cannot be used with test: {chosen.test}, which compares the values as "
+                   "they are (0 and 1)", chosen.transform, "none (leave transform out)")
         if metrics[-1].adjust_for:
             if metrics[-1].reference is None:
                 r.fail(f"{path}.adjust_for", "needs a reference segment to measure the adjusted gaps against",
@@ -579,7 +583,8 @@ def _metrics(r: _Reader, top: dict, source: SourceConfig) -> tuple[MetricConfig,
             test = metrics[-1].test
             if test != methods.AUTO and methods.get(test).adjusted_covariance is None:
                 ok = [n for n in methods.names() if methods.get(n).adjusted_covariance is not None]
-                r.fail(f"{path}.test", "cannot be adjusted for strata (a rank test has no additive model)",
+                r.fail(f"{path}.test", f"cannot be adjusted for strata (no additive model is fitted for "
+                       f"{methods.get(test).label})",
                        test, f"{', '.join(ok)} or {methods.AUTO} with adjust_for")
     return tuple(metrics)
 

@@ -216,10 +216,19 @@ class TestDescribesItself:
         assert METHOD.statistic_text("12.6", ["3"]) == "χ²(3) = 12.6"
         assert METHOD.watched_checks([]) == () and METHOD.checks_apply is False
 
-    def test_config_accepts_it_by_name_but_not_with_adjust_for(self):
+    def test_config_accepts_it_by_name_but_not_with_adjust_for_or_a_transform(self):
         assert _job("proportions").metrics[0].test == "proportions"
-        with pytest.raises(ConfigError, match="adjust_for"):
+        with pytest.raises(ConfigError) as err:
             _job("proportions", reference="A", adjust_for=["region"])
+        assert str(err.value).endswith(
+            "props.yaml: metrics[0].test: cannot be adjusted for strata (no additive model is fitted for test of "
+            "homogeneity of proportions) (given: 'proportions'; accepted: anova, welch or auto with adjust_for)")
+        with pytest.raises(ConfigError) as err:
+            _job("proportions", transform="log")
+        assert str(err.value).endswith(
+            "props.yaml: metrics[0].transform: cannot be used with test: proportions, which compares the values as "
+            "they are (0 and 1) (given: 'log'; accepted: none (leave transform out))")
+        assert _job("auto", transform="log").metrics[0].transform == "log"
 
 
 # ---------------------------------------------------------------- auto and the analysis

@@ -129,6 +129,10 @@ class TestMethod(ABC):
         (``'classic'`` when the test assumes equal spreads, ``'hc3'`` otherwise; see
         :mod:`monitor.stats.adjusted`); None when the test cannot be asked for with
         ``adjust_for`` (a rank test has no additive model).
+    transforms : bool
+        False when the method compares the values as they are and a metric's
+        ``transform`` (log, log1p) would destroy its data (proportions: 0 and 1); the
+        config refuses a transform with it.
     checks_apply : bool
         False when the assumption checks of means (equal spreads, normality) say
         nothing about this method's data (proportions: the spread of 0/1 values is a
@@ -148,6 +152,7 @@ class TestMethod(ABC):
     posthoc: ClassVar[Family]
     many_to_one: ClassVar[Family]
     adjusted_covariance: ClassVar[str | None] = "hc3"
+    transforms: ClassVar[bool] = True
     checks_apply: ClassVar[bool] = True
 
     # ------------------------------------------------------------ the numbers

@@ -93,6 +93,7 @@ class Proportions(TestMethod):
     many_to_one = _NEWCOMBE
     adjusted_covariance = None  # with adjust_for: no additive model of proportions is offered
     checks_apply = False  # the mean-based checks only re-test the proportions (see the module notes)
+    transforms = False  # log(0) is undefined and log(1) = 0: a transform would destroy the counts
 
     def omnibus(self, segs: Segments) -> HomogeneityResult:
         c = counts(segs)
