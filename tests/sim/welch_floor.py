@@ -16,7 +16,7 @@ Welch's statistic is computed vectorised (Welch 1951, the formulas of
 :func:`monitor.stats.omnibus.welch_anova`); the first replications of every cell are
 computed again with the project's routine through the method registry and must agree,
 so the table measures the code segwatch runs. The table is what ``docs/error_rates.md``
-quotes for the size floor :data:`monitor.methods.welch.MIN_SEGMENT_N`.
+quotes for the size floor :data:`monitor.methods.welch.SIZE_FLOOR`.
 """
 
 from __future__ import annotations
