@@ -370,7 +370,7 @@ def test_a_metric_that_could_not_be_computed(toy: Path):
     with Job(cfg) as job:
         data = collect(Degenerate(job.history), cfg, "2026-W13")
         text = render_html(data)
-    assert [m["metric"] for m in data.metrics][-1] == "wait"  # no q-value: listed last
+    assert [r.metric for r in data.results][-1] == "wait"  # no q-value: listed last
     section = text[text.index('id="metric-wait"'):]
     plain = Page(section[:section.index("</section>")]).plain
     assert "not computed" in plain

@@ -22,7 +22,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import math
 import os
 import re
 import shutil
@@ -467,7 +466,7 @@ LONG_SEGMENTS = ("s" * 299 + "A", "s" * 299 + "B", "free text " * 30)  # 300 cha
 
 @pytest.mark.parametrize("upgrade", [False, True], ids=["new", "upgraded"])
 def test_long_labels_store_on_postgresql_and_mariadb(server_history, upgrade):
-    engine_name, url = server_history
+    _engine, url = server_history
     if upgrade:
         _old_layout(url)
     h = History(url, LONG_JOB)

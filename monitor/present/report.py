@@ -42,12 +42,11 @@ Student t interval for one segment's mean in one period, formed from the stored
 from __future__ import annotations
 
 import html
-import json
 import logging
 import math
 import os
 import tempfile
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Mapping, Protocol, Sequence
@@ -56,7 +55,7 @@ from scipy import stats as sps
 
 from .. import __version__, methods
 from . import plots
-from ..model import QUANTILE_KEYS, StoredResult, StoredRun
+from ..model import QUANTILE_KEYS, Check, EffectSize, MetricResult, PairRow, StoredResult, StoredRun
 from ..config import JobConfig, MetricConfig
 from ..redact import redact
 from ..errors import SegwatchError, UsageError
@@ -119,8 +118,6 @@ class ReportData:
     events_now: tuple[dict[str, Any], ...]
     events_window: tuple[dict[str, Any], ...]
     metric_config: Mapping[str, MetricConfig]
-    metrics: tuple[dict[str, Any], ...] = ()  # the JSON form of ``results`` (filled by :func:`collect`)
-    trail: Mapping[str, tuple[dict[str, Any], ...]] = field(default_factory=dict)  # ... of ``trail_results``
 
     @property
     def period(self) -> str:
@@ -180,15 +177,12 @@ def collect(history: "History", config: JobConfig, period: Period | str | None =
     events_now = tuple(sorted((e for e in events_window if e["period"] == run.period),
                               key=lambda e: (_kind_rank(e["kind"]), e["metric"] or "", e["segment"] or "")))
     trail_results = {k: tuple(v) for k, v in trail.items()}
-    as_json = {id(r): r.to_json() for r in entries}
     return ReportData(
         job=config.job, config_path=cfg_arg, history_url=redact(config.history.url),
         period_kind=config.period, timezone=config.timezone, segment_word=config.source.segment_column,
         run=run, window=window, results=tuple(now), trail_results=trail_results,
         events_now=events_now, events_window=events_window,
         metric_config={m.name: m for m in config.metrics},
-        metrics=tuple(as_json[id(r)] for r in now),
-        trail={k: tuple(as_json[id(r)] for r in v) for k, v in trail_results.items()},
     )
 
 
@@ -301,25 +295,25 @@ def _method_label(name: Any, default: Any = "") -> str:
     return method.label if method else default
 
 
-def _stat_text(m: Mapping[str, Any]) -> str:
-    if not _ok(m.get("statistic")):
+def _stat_text(m: MetricResult | Mapping[str, Any]) -> str:
+    """The statistic with its degrees of freedom as the method writes it (a stored entry's JSON is read first)."""
+    if not isinstance(m, MetricResult):
+        m = MetricResult.from_json(m)
+    if not _ok(m.statistic):
         return "not computed"
-    df = [num(d, 4) if _ok(d) and d != int(d) else (str(int(d)) if _ok(d) else "–")
-          for d in (m.get("df") or [])]
-    method = methods.find(m.get("method"))
+    df = [num(d, 4) if _ok(d) and d != int(d) else (str(int(d)) if _ok(d) else "–") for d in m.df]
+    method = methods.find(m.method)
     if method is None:  # a method this release does not know (stored by another one)
-        return f"{m.get('method')}({', '.join(df)}) = {num(m['statistic'], 4)}"
-    return method.statistic_text(num(m["statistic"], 4), df)
+        return f"{m.method}({', '.join(df)}) = {num(m.statistic, 4)}"
+    return method.statistic_text(num(m.statistic, 4), df)
 
 
-def _effect_text(eff: Mapping[str, Any] | None) -> str:
-    if not eff or not _ok(eff.get("value")):
+def _effect_text(eff: EffectSize | None) -> str:
+    if eff is None or not _ok(eff.value):
         return "–"
-    name = EFFECT_NAMES.get(eff.get("name", ""), eff.get("name", ""))
-    text = f"{name} {num(eff['value'], 2)}"
-    ci = eff.get("ci")
-    if ci and all(_ok(c) for c in ci):
-        text += f" ({num(ci[0], 2)} to {num(ci[1], 2)})"
+    text = f"{EFFECT_NAMES.get(eff.name, eff.name)} {num(eff.value, 2)}"
+    if _ok(eff.ci_low) and _ok(eff.ci_high):
+        text += f" ({num(eff.ci_low, 2)} to {num(eff.ci_high, 2)})"
     return text
 
 
@@ -333,10 +327,10 @@ def _check_name(key: str, long: bool = False) -> str:
     return CHECK_SHORT.get(key, key.replace("_", " "))
 
 
-def _reason(m: Mapping[str, Any]) -> str:
+def _reason(m: MetricResult) -> str:
     """The stored reason for the method, without a leading repeat of the method's name."""
-    text = str(m.get("method_reason") or "")
-    name = _method_label(m.get("method"))
+    text = m.method_reason or ""
+    name = _method_label(m.method)
     if name and text.startswith(name + ":"):
         text = text[len(name) + 1:].strip()
     return text[:1].upper() + text[1:] if text else ""
@@ -347,18 +341,19 @@ def lvl(x: Any) -> str:
     return f"{x:g}" if _ok(x) else "–"
 
 
-def _ordered_checks(m: Mapping[str, Any]) -> list[tuple[str, Mapping[str, Any]]]:
-    checks = list((m.get("assumptions") or {}).items())
-    return sorted(checks, key=lambda kv: (not kv[1].get("watched"), kv[0]))
+def _ordered_checks(m: MetricResult) -> list[tuple[Check, bool]]:
+    """The assumption checks with whether each is watched, the watched ones first, then by name."""
+    checks = [(c, k in m.relevant_checks) for k, c in m.assumptions.items()]
+    return sorted(checks, key=lambda cw: (not cw[1], cw[0].name))
 
 
-def _display(m: Mapping[str, Any], cfg: MetricConfig | None) -> str:
-    return cfg.label if cfg and cfg.label else m["metric"]
+def _display(m: MetricResult, cfg: MetricConfig | None) -> str:
+    return cfg.label if cfg and cfg.label else m.metric
 
 
-def _unit_label(m: Mapping[str, Any], cfg: MetricConfig | None) -> str:
+def _unit_label(m: MetricResult, cfg: MetricConfig | None) -> str:
     base = _display(m, cfg)
-    unit = m.get("unit") or (cfg.unit if cfg else None)
+    unit = m.unit or (cfg.unit if cfg else None)
     transform = cfg.transform if cfg else "none"
     if transform == "log1p":
         return f"log1p({base})"
@@ -374,7 +369,7 @@ def render_html(data: ReportData) -> str:
     """The whole page for ``data``."""
     title = f"{data.job} · {data.period}"
     sections = [_masthead(data), _contents(data), _events_section(data), _overview(data), _care(data)]
-    sections += [_metric_section(data, m, i) for i, m in enumerate(data.metrics)]
+    sections += [_metric_section(data, sr.result, i) for i, sr in enumerate(data.results)]
     sections.append(_footer(data))
     return (
         "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n"
@@ -400,17 +395,17 @@ def _masthead(d: ReportData) -> str:
     word = PERIOD_WORDS.get(d.period_kind, "period")
     run = d.run
     segs = run.segments
-    sig = [m for m in d.metrics if m["significant"]]
+    sig = [r.result for r in d.results if r.result.significant]
     computed = [r for r in d.results if r.result.computed]
     if sig:
-        names = ", ".join(f"<a href=\"#{_anchor(m['metric'])}\">{_e(_display(m, d.metric_config.get(m['metric'])))}</a>"
+        names = ", ".join(f"<a href=\"#{_anchor(m.metric)}\">{_e(_display(m, d.metric_config.get(m.metric)))}</a>"
                           for m in sig)
-        lede = (f"{len(sig)} of {len(d.metrics)} metrics differ by {_e(d.segment_word)} this {word}: "
+        lede = (f"{len(sig)} of {len(d.results)} metrics differ by {_e(d.segment_word)} this {word}: "
                 f"{names}.")
     else:
-        lede = f"None of the {len(d.metrics)} metrics differs clearly by {_e(d.segment_word)} this {word}."
-    if len(computed) < len(d.metrics):
-        lede += f" {len(d.metrics) - len(computed)} could not be computed (see the notes)."
+        lede = f"None of the {len(d.results)} metrics differs clearly by {_e(d.segment_word)} this {word}."
+    if len(computed) < len(d.results):
+        lede += f" {len(d.results) - len(computed)} could not be computed (see the notes)."
     n_ev = len(d.events_now)
     lede += (f" {n_ev} event{'s' if n_ev != 1 else ''} this {word}." if n_ev
              else " Nothing changed since the previous stored period.")
@@ -440,8 +435,8 @@ def _anchor(metric: str) -> str:
 def _contents(d: ReportData) -> str:
     items = ["<li><a href=\"#events\">Events</a></li>", "<li><a href=\"#metrics\">All metrics</a></li>",
              "<li><a href=\"#care\">Reading with care</a></li>"]
-    items += [f"<li><a href=\"#{_anchor(m['metric'])}\">{_e(_display(m, d.metric_config.get(m['metric'])))}</a></li>"
-              for m in d.metrics]
+    items += [f"<li><a href=\"#{_anchor(r.metric)}\">{_e(_display(r.result, d.metric_config.get(r.metric)))}</a></li>"
+              for r in d.results]
     return f"<nav class=\"contents\" aria-label=\"Contents\"><ul>{''.join(items)}</ul></nav>"
 
 
@@ -464,38 +459,38 @@ def _events_section(d: ReportData) -> str:
             f"<h2 id=\"events-h\">What changed this {word}</h2>\n{body}\n</section>")
 
 
-def _verdict_chip(m: Mapping[str, Any]) -> str:
-    if not _ok(m.get("p_value")):
+def _verdict_chip(m: MetricResult) -> str:
+    if not m.computed:
         return "<span class=\"chip chip-na\">not computed</span>"
-    if m.get("significant"):
+    if m.significant:  # the verdict as stored, at the level the period was judged at
         return "<span class=\"chip chip-sig\">differs</span>"
     return "<span class=\"chip chip-ns\">no clear difference</span>"
 
 
-def _flagged(m: Mapping[str, Any]) -> list[tuple[str, str]]:
-    return [(s["segment"], s["flag"]) for s in m.get("segments", []) if s.get("flag") in ("high", "low")]
+def _flagged(m: MetricResult) -> list[tuple[str, str]]:
+    return [(s.segment, s.flag) for s in m.segments if s.flag in ("high", "low")]
 
 
-def _flag_html(m: Mapping[str, Any]) -> str:
+def _flag_html(m: MetricResult) -> str:
     out = [f"<span class=\"flag flag-{f}\">{plots.FLAG_MARK[f]} {_e(s)} {'above' if f == 'high' else 'below'}</span>"
            for s, f in _flagged(m)]
     return "<br>".join(out) or "<span class=\"quiet\">none</span>"
 
 
-def _checks_html(m: Mapping[str, Any]) -> str:
+def _checks_html(m: MetricResult) -> str:
     checks = _ordered_checks(m)
     if not checks:
         return "<span class=\"quiet\">not run (no values)</span>"
-    parts = [] if any(c.get("watched") for _, c in checks) else ["<span class=\"quiet\">none watched</span>"]
+    parts = [] if any(w for _, w in checks) else ["<span class=\"quiet\">none watched</span>"]
     others_ok = others_bad = 0
-    for key, c in checks:
-        if not c.get("watched"):
-            if c.get("passed") is False:
+    for c, watched in checks:
+        if not watched:
+            if c.passed is False:
                 others_bad += 1
             else:
                 others_ok += 1
             continue
-        parts.append(_check_chip(key, c))
+        parts.append(_check_chip(c))
     if others_ok or others_bad:
         rest = []
         if others_bad:
@@ -506,45 +501,44 @@ def _checks_html(m: Mapping[str, Any]) -> str:
     return "<br>".join(parts)
 
 
-def _check_chip(key: str, c: Mapping[str, Any]) -> str:
-    passed = c.get("passed")
-    state, cls = ("passes", "ok") if passed else ("fails", "bad") if passed is False else ("not run", "na")
-    return f"<span class=\"check check-{cls}\">{_e(_check_name(key))}: {state}</span>"
+def _check_chip(c: Check) -> str:
+    state, cls = ("passes", "ok") if c.passed else ("fails", "bad") if c.passed is False else ("not run", "na")
+    return f"<span class=\"check check-{cls}\">{_e(_check_name(c.name))}: {state}</span>"
 
 
-def _notes(m: Mapping[str, Any]) -> list[str]:
+def _notes(m: MetricResult) -> list[str]:
     out = []
-    if m.get("note"):
-        out.append(str(m["note"]))
-    sens = m.get("sensitivity") or {}
-    if sens.get("underpowered"):
-        out.append(f"underpowered: with these sizes only effects of Cohen's f {num(sens.get('min_detectable_f'), 2)}"
-                   f" or more are detected with probability {num(sens.get('power'), 2)}"
-                   + (f" (a spread of {num(sens.get('min_detectable_diff'))} in the means)"
-                      if _ok(sens.get("min_detectable_diff")) else ""))
-    if m.get("sample_size"):
-        out.append(f"values are a random sample of up to {m['sample_size']} per segment")
+    if m.note:
+        out.append(str(m.note))
+    sens = m.sensitivity
+    if sens is not None and sens.underpowered:
+        out.append(f"underpowered: with these sizes only effects of Cohen's f {num(sens.min_f, 2)}"
+                   f" or more are detected with probability {num(sens.power, 2)}"
+                   + (f" (a spread of {num(sens.min_diff)} in the means)" if _ok(sens.min_diff) else ""))
+    if m.sample_size:
+        out.append(f"values are a random sample of up to {m.sample_size} per segment")
     return out
 
 
 def _overview(d: ReportData) -> str:
     rows = []
-    for m in d.metrics:
-        cfg = d.metric_config.get(m["metric"])
-        method = _method_label(m.get("method"), m.get("method", ""))
+    for sr in d.results:
+        m = sr.result
+        cfg = d.metric_config.get(m.metric)
+        method = _method_label(m.method, m.method)
         notes = _notes(m)
         why = f"<strong>{_e(method)}</strong>: {_e(_reason(m))}"
         if notes:
             why += "<br>" + "<br>".join(f"<span class=\"note-label\">Note</span> {_e(n)}" for n in notes)
-        sig = " class=\"is-sig\"" if m.get("significant") else ""
+        sig = " class=\"is-sig\"" if m.significant else ""
         rows.append(
             f"<tbody{sig}><tr class=\"main\">"
-            f"<th scope=\"row\" rowspan=\"2\"><a href=\"#{_anchor(m['metric'])}\">{_e(_display(m, cfg))}</a>"
+            f"<th scope=\"row\" rowspan=\"2\"><a href=\"#{_anchor(m.metric)}\">{_e(_display(m, cfg))}</a>"
             f"<br>{_verdict_chip(m)}</th>"
-            f"<td class=\"num q\" title=\"q = {_e(pexact(m.get('q_value')))}\">{pval(m.get('q_value'))}</td>"
-            f"<td class=\"num\" title=\"p = {_e(pexact(m.get('p_value')))}\">{pval(m.get('p_value'))}</td>"
+            f"<td class=\"num q\" title=\"q = {_e(pexact(m.q_value))}\">{pval(m.q_value)}</td>"
+            f"<td class=\"num\" title=\"p = {_e(pexact(m.p_value))}\">{pval(m.p_value)}</td>"
             f"<td class=\"num\">{_e(_stat_text(m))}</td>"
-            f"<td class=\"num\">{_e(_effect_text(m.get('effect_size')))}</td>"
+            f"<td class=\"num\">{_e(_effect_text(m.effect_size))}</td>"
             f"<td>{_flag_html(m)}</td>"
             f"<td>{_checks_html(m)}</td>"
             f"</tr><tr class=\"why\"><td colspan=\"6\">{why}</td></tr></tbody>")
@@ -554,7 +548,7 @@ def _overview(d: ReportData) -> str:
     return (
         "<section id=\"metrics\" aria-labelledby=\"metrics-h\">\n"
         "<h2 id=\"metrics-h\">All metrics, smallest q-value first</h2>\n"
-        f"<p class=\"hint\">q is p adjusted across the {len(d.metrics)} metrics of the period; a metric "
+        f"<p class=\"hint\">q is p adjusted across the {len(d.results)} metrics of the period; a metric "
         + (f"differs when q is at most {lvl(d.fdr_level)} (the level this period was judged at). "
            if d.fdr_level is not None else
            "differs as judged when it was stored (the level was not recorded then). ")
@@ -591,13 +585,13 @@ staffing or anyone's performance need review by qualified people and must follow
 # ------------------------------------------------------------------ per metric
 
 
-def _metric_section(d: ReportData, m: Mapping[str, Any], index: int) -> str:
-    cfg = d.metric_config.get(m["metric"])
+def _metric_section(d: ReportData, m: MetricResult, index: int) -> str:
+    cfg = d.metric_config.get(m.metric)
     name = _display(m, cfg)
     key = f"f{index}"
     decimals = cfg.decimals if cfg else None
     parts = [
-        f"<section class=\"metric\" id=\"{_anchor(m['metric'])}\" aria-labelledby=\"{key}-h\">",
+        f"<section class=\"metric\" id=\"{_anchor(m.metric)}\" aria-labelledby=\"{key}-h\">",
         f"<h2 id=\"{key}-h\">{_e(name)} {_verdict_chip(m)}</h2>",
         f"<p class=\"summary\">{_summary(d, m, decimals)}</p>",
         _facts(d, m),
@@ -611,22 +605,22 @@ def _metric_section(d: ReportData, m: Mapping[str, Any], index: int) -> str:
     return "\n".join(p for p in parts if p)
 
 
-def _summary(d: ReportData, m: Mapping[str, Any], decimals: int | None) -> str:
+def _summary(d: ReportData, m: MetricResult, decimals: int | None) -> str:
     word = PERIOD_WORDS.get(d.period_kind, "period")
     seg = _e(d.segment_word)
-    q = m.get("q_value")
-    if not _ok(m.get("p_value")):
-        return f"Not computed this {word}: {_e(m.get('note') or 'no reason stored')}."
-    if m.get("significant"):
+    q = m.q_value
+    if not m.computed:
+        return f"Not computed this {word}: {_e(m.note or 'no reason stored')}."
+    if m.significant:
         text = (f"It differs by {seg} this {word} (q {pval(q)}, at or below {lvl(d.fdr_level)}, the level it was "
                 f"judged at)." if d.fdr_level is not None else
                 f"It differs by {seg} this {word} (q {pval(q)}; judged so when stored, at a level not recorded).")
-        sc = _scale(d.metric_config.get(m["metric"]))
-        for s in m.get("segments", []):
-            if s.get("flag") in ("high", "low") and _ok(s.get("mean")) and _ok(s.get("diff_vs_rest")):
-                rest = sc.back(s["mean"] - s["diff_vs_rest"])
-                text += (f" {_e(s['segment'])} stands {'above' if s['flag'] == 'high' else 'below'} the rest: "
-                         f"{sc.centre} {num(sc.back(s['mean']), decimals=decimals)} against "
+        sc = _scale(d.metric_config.get(m.metric))
+        for s in m.segments:
+            if s.flag in ("high", "low") and _ok(s.mean) and _ok(s.diff_vs_rest):
+                rest = sc.back(s.mean - s.diff_vs_rest)
+                text += (f" {_e(s.segment)} stands {'above' if s.flag == 'high' else 'below'} the rest: "
+                         f"{sc.centre} {num(sc.back(s.mean), decimals=decimals)} against "
                          f"{num(rest, decimals=decimals)} for the rest's records.")
         if not _flagged(m):
             text += f" No single {seg} stands apart from most of the others."
@@ -636,28 +630,27 @@ def _summary(d: ReportData, m: Mapping[str, Any], decimals: int | None) -> str:
     return f"No clear difference by {seg} this {word} (q {pval(q)}, above {lvl(d.fdr_level)}, the level it was judged at)."
 
 
-def _facts(d: ReportData, m: Mapping[str, Any]) -> str:
+def _facts(d: ReportData, m: MetricResult) -> str:
     items = [
-        ("Test", f"{_e(_method_label(m.get('method'), m.get('method')))}. {_e(_reason(m))}"),
-        ("Result", f"{_e(_stat_text(m))}, p {pval(m.get('p_value'))}, q {pval(m.get('q_value'))}"),
-        ("Effect size", _e(_effect_text(m.get("effect_size")))
-         + "".join(f"; {_e(_effect_text(x))}" for x in m.get("other_effect_sizes") or [] if x)),
+        ("Test", f"{_e(_method_label(m.method, m.method))}. {_e(_reason(m))}"),
+        ("Result", f"{_e(_stat_text(m))}, p {pval(m.p_value)}, q {pval(m.q_value)}"),
+        ("Effect size", _e(_effect_text(m.effect_size))
+         + "".join(f"; {_e(_effect_text(x))}" for x in m.extra_effects)),
     ]
     checks = _ordered_checks(m)
     if checks:
         lines = []
-        for k, c in checks:
-            detail = c.get("detail") or ""
-            lines.append(f"{_check_chip(k, c)}{' <span class=watched>watched</span>' if c.get('watched') else ''}"
-                         f" <span class=\"quiet\">{_e(detail)}</span>")
+        for c, watched in checks:
+            lines.append(f"{_check_chip(c)}{' <span class=watched>watched</span>' if watched else ''}"
+                         f" <span class=\"quiet\">{_e(c.detail)}</span>")
         items.append(("Checks", "<br>".join(lines)))
     for n in _notes(m):
         items.append(("Note", _e(n)))
-    dq = m.get("data_quality") or {}
-    if dq.get("rows"):
-        bad = sum(int(dq.get(k) or 0) for k in ("null", "non_numeric", "non_finite", "out_of_domain"))
-        items.append(("Data", f"{num(dq['rows'], decimals=0)} rows, {bad} unusable values"
-                              + (f" ({num(100 * dq['bad_share'], 2)}%)" if bad and _ok(dq.get("bad_share")) else "")))
+    dq = m.quality
+    if dq.rows:
+        bad = dq.bad
+        items.append(("Data", f"{num(dq.rows, decimals=0)} rows, {bad} unusable values"
+                              + (f" ({num(100 * dq.bad_share, 2)}%)" if bad and _ok(dq.bad_share) else "")))
     body = "".join(f"<dt>{k}</dt><dd>{v}</dd>" for k, v in items)
     return f"<dl class=\"facts\">{body}</dl>"
 
@@ -683,18 +676,17 @@ def _scale(cfg: MetricConfig | None) -> Scale:
     return Scale(lambda x: x, False, "mean")
 
 
-def _boxes(m: Mapping[str, Any], sc: Scale, intervals: bool = False) -> list[plots.Box]:
+def _boxes(m: MetricResult, sc: Scale, intervals: bool = False) -> list[plots.Box]:
     """The segments as boxes on the display scale; without quantiles (or with
     ``intervals``) a bar of mean ± 1 sd (or the 95% interval of the mean)."""
     out = []
-    for s in m.get("segments", []):
-        qd = s.get("quantiles") or {}
-        qs = tuple(qd.get(k) for k in QUANTILE_KEYS) if qd else ()
-        qs = tuple(sc.back(float(x)) for x in qs) if qs and all(_ok(x) for x in qs) and not intervals else ()
-        mean, sd = _f(s.get("mean")), _f(s.get("sd"))
-        lo, hi = t_interval(s.get("n"), mean, sd) if intervals else (mean - sd, mean + sd)
-        out.append(plots.Box(s["segment"], int(s.get("n") or 0), sc.back(mean), sc.back(lo), sc.back(hi), qs,
-                             s.get("flag"), bool(s.get("excluded"))))
+    for s in m.segments:
+        qs = tuple(sc.back(float(x)) for x in s.quantiles) if s.quantiles and all(
+            _ok(x) for x in s.quantiles) and not intervals else ()
+        mean, sd = _f(s.mean), _f(s.sd)
+        lo, hi = t_interval(s.n, mean, sd) if intervals else (mean - sd, mean + sd)
+        out.append(plots.Box(s.segment, int(s.n or 0), sc.back(mean), sc.back(lo), sc.back(hi), qs, s.flag,
+                             bool(s.excluded)))
     return out
 
 
@@ -702,7 +694,7 @@ def _f(x: Any) -> float:
     return float(x) if _ok(x) else math.nan
 
 
-def _box_figure(d: ReportData, m: Mapping[str, Any], cfg: MetricConfig | None, key: str,
+def _box_figure(d: ReportData, m: MetricResult, cfg: MetricConfig | None, key: str,
                 decimals: int | None) -> str:
     sc = _scale(cfg)
     boxes = _boxes(m, sc)
@@ -710,7 +702,7 @@ def _box_figure(d: ReportData, m: Mapping[str, Any], cfg: MetricConfig | None, k
         return ""
     seg = d.segment_word
     name = _display(m, cfg)
-    raw = [s.get("quantiles") or {} for s in m.get("segments", []) if s.get("quantiles")]
+    raw = [dict(zip(QUANTILE_KEYS, s.quantiles)) for s in m.segments if s.quantiles]
     with_q = [b for b in boxes if b.quantiles]
     flat = bool(raw) and all(q.get("q25") == q.get("q75") for q in raw)
     if flat:
@@ -721,8 +713,8 @@ def _box_figure(d: ReportData, m: Mapping[str, Any], cfg: MetricConfig | None, k
     elif len(with_q) == len(boxes):
         how = (f"Each box spans the middle half of the {seg}'s values (25% to 75%), the thick line is the "
                f"median, the whiskers reach from 5% to 95%, and the diamond is the {sc.centre}.")
-        if m.get("sample_size"):
-            how += f" Quantiles are estimated from a random sample of up to {m['sample_size']} values per {seg}."
+        if m.sample_size:
+            how += f" Quantiles are estimated from a random sample of up to {m.sample_size} values per {seg}."
     else:
         how = (f"Quantiles were not stored for {'some' if with_q else 'these'} segments (the period was computed "
                "without values), so those are drawn as mean ± 1 standard deviation instead of a box.")
@@ -736,7 +728,7 @@ def _box_figure(d: ReportData, m: Mapping[str, Any], cfg: MetricConfig | None, k
             f"{_e(text)}</figcaption></figure>")
 
 
-def _box_summary(m: Mapping[str, Any], boxes: Sequence[plots.Box], seg: str, decimals: int | None,
+def _box_summary(m: MetricResult, boxes: Sequence[plots.Box], seg: str, decimals: int | None,
                  flat: bool, sc: Scale) -> str:
     use_median = not flat and all(b.quantiles for b in boxes if not b.excluded)
     vals = [(b.quantiles[2] if use_median else b.mean, b.segment) for b in boxes
@@ -765,23 +757,22 @@ def _box_summary(m: Mapping[str, Any], boxes: Sequence[plots.Box], seg: str, dec
     return text
 
 
-def _segment_table(m: Mapping[str, Any], decimals: int | None, seg: str, sc: Scale) -> str:
-    segs = m.get("segments", [])
-    if not segs:
+def _segment_table(m: MetricResult, decimals: int | None, seg: str, sc: Scale) -> str:
+    if not m.segments:
         return ""
     rows = []
-    for s in segs:
-        qd = {k: sc.back(v) for k, v in (s.get("quantiles") or {}).items()}
-        lo, hi = (sc.back(x) for x in t_interval(s.get("n"), s.get("mean"), s.get("sd")))
-        flag = s.get("flag")
+    for s in m.segments:
+        qd = {k: sc.back(v) for k, v in zip(QUANTILE_KEYS, s.quantiles)}
+        lo, hi = (sc.back(x) for x in t_interval(s.n, s.mean, s.sd))
+        flag = s.flag
         verdict = (f"<span class=\"flag flag-{flag}\">{plots.FLAG_MARK[flag]} {'above' if flag == 'high' else 'below'}"
                    "</span>" if flag in ("high", "low") else
-                   "<span class=\"quiet\">left out</span>" if s.get("excluded") else "")
+                   "<span class=\"quiet\">left out</span>" if s.excluded else "")
         rows.append(
-            f"<tr><th scope=\"row\">{_e(s['segment'])}</th><td class=\"num\">{num(s.get('n'), decimals=0)}</td>"
-            f"<td class=\"num\">{num(sc.back(_f(s.get('mean'))), decimals=decimals)}</td>"
+            f"<tr><th scope=\"row\">{_e(s.segment)}</th><td class=\"num\">{num(s.n, decimals=0)}</td>"
+            f"<td class=\"num\">{num(sc.back(_f(s.mean)), decimals=decimals)}</td>"
             f"<td class=\"num\">{_range(lo, hi, decimals)}</td>"
-            f"<td class=\"num\">{num(s.get('sd'), decimals=decimals)}</td>"
+            f"<td class=\"num\">{num(s.sd, decimals=decimals)}</td>"
             f"<td class=\"num\">{num(qd.get('q50'), decimals=decimals)}</td>"
             f"<td class=\"num\">{_range(qd.get('q25'), qd.get('q75'), decimals)}</td>"
             f"<td>{verdict}</td></tr>")
@@ -798,22 +789,21 @@ def _range(lo: Any, hi: Any, decimals: int | None) -> str:
     return f"{num(lo, decimals=decimals)} to {num(hi, decimals=decimals)}" if _ok(lo) and _ok(hi) else "–"
 
 
-def _trend_figure(d: ReportData, m: Mapping[str, Any], cfg: MetricConfig | None, key: str,
+def _trend_figure(d: ReportData, m: MetricResult, cfg: MetricConfig | None, key: str,
                   decimals: int | None) -> str:
-    trail = d.trail.get(m["metric"], ())
+    trail = d.trail_results.get(m.metric, ())
     if not trail:
         return ""
     window = list(d.window)
     pos = {p: i for i, p in enumerate(window)}
-    segments = list(dict.fromkeys(s["segment"] for e in trail for s in e.get("segments", [])))
-    segments.sort()
+    segments = sorted(dict.fromkeys(s.segment for e in trail for s in e.result.segments))
     sc = _scale(cfg)
     series: dict[str, list[plots.Point]] = {s: [] for s in segments}
     for e in trail:
-        for s in e.get("segments", []):
-            lo, hi = t_interval(s.get("n"), s.get("mean"), s.get("sd"))
-            series[s["segment"]].append(plots.Point(pos[e["period"]], sc.back(_f(s.get("mean"))), sc.back(lo),
-                                                    sc.back(hi), s.get("flag")))
+        for s in e.result.segments:
+            lo, hi = t_interval(s.n, s.mean, s.sd)
+            series[s.segment].append(plots.Point(pos[e.period], sc.back(_f(s.mean)), sc.back(lo), sc.back(hi),
+                                                 s.flag))
     seg = d.segment_word
     name = _display(m, cfg)
     label = f"{name}: each {seg}'s {sc.centre} with its 95% interval, {window[0]} to {window[-1]}"
@@ -853,8 +843,8 @@ def _trend_summary(series: Mapping[str, Sequence[plots.Point]], window: Sequence
     return " ".join(parts)
 
 
-def _q_figure(d: ReportData, m: Mapping[str, Any], key: str) -> str:
-    trail = d.trail_results.get(m["metric"], ())
+def _q_figure(d: ReportData, m: MetricResult, key: str) -> str:
+    trail = d.trail_results.get(m.metric, ())
     if not trail:
         return ""
     window = list(d.window)
@@ -868,8 +858,8 @@ def _q_figure(d: ReportData, m: Mapping[str, Any], key: str) -> str:
         verdict[i] = sr.result.significant
         failing[i] = bool(sr.result.watched_failing)
     marks = [(pos[e["period"]], e["kind"]) for e in d.events_window
-             if e.get("metric") == m["metric"] and e["kind"] in plots.EVENT_STYLE]
-    name = _display(m, d.metric_config.get(m["metric"]))
+             if e.get("metric") == m.metric and e["kind"] in plots.EVENT_STYLE]
+    name = _display(m, d.metric_config.get(m.metric))
     level = d.fdr_level
     label = f"{name}: q-value per period on a log scale, {window[0]} to {window[-1]}, {_level_words(level)}"
     svg = plots.qvalue_svg(window, q, math.nan if level is None else level, marks, key=f"{key}q", label=label,
@@ -911,27 +901,26 @@ def _spans(window: Sequence[str], marks: Sequence[bool]) -> str:
     return parts[0] if len(parts) == 1 else ", ".join(parts[:-1]) + " and " + parts[-1]
 
 
-def _pairs_figure(d: ReportData, m: Mapping[str, Any], decimals: int | None) -> str:
-    pairs = m.get("pairs") or []
+def _pairs_figure(d: ReportData, m: MetricResult, decimals: int | None) -> str:
+    pairs = m.pairs
     if not pairs:
         return ""
-    level = m.get("pair_level") if _ok(m.get("pair_level")) else 0.05
+    level = m.pair_level if _ok(m.pair_level) else 0.05
     seg = d.segment_word
-    family = methods.family(m.get("posthoc"))
-    posthoc = family.label if family else m.get("posthoc") or ""
-    gate = ("" if m.get("significant") else
+    family = methods.family(m.posthoc)
+    posthoc = family.label if family else m.posthoc or ""
+    gate = ("" if m.significant else
             f" The metric does not differ this {PERIOD_WORDS.get(d.period_kind, 'period')}, so no pair counts as a "
             "finding; the values are shown for reference.")
-    if m.get("reference") is not None:
+    if m.reference is not None:
         body = _reference_table(m, decimals, level, seg)
-        cap = (f"<strong>Each {_e(seg)} against {_e(m['reference'])}</strong> ({_e(posthoc)}, adjusted for the "
+        cap = (f"<strong>Each {_e(seg)} against {_e(m.reference)}</strong> ({_e(posthoc)}, adjusted for the "
                f"{len(pairs)} comparisons).{_e(gate)}")
     else:
-        names = [s["segment"] for s in m.get("segments", []) if not s.get("excluded")]
-        names = [n for n in names if any(n in (p["a"], p["b"]) for p in pairs)]
-        left_out = int(m.get("pairs_left_out") or 0)  # a bounded entry: not every pair is there
-        if len(names) > MATRIX_MAX or left_out:
-            body = _pair_list(pairs, level, len(pairs) + left_out)
+        names = [s.segment for s in m.segments if not s.excluded]
+        names = [n for n in names if any(n in (p.a, p.b) for p in pairs)]
+        if len(names) > MATRIX_MAX or m.pairs_left_out:  # a bounded entry: not every pair is there
+            body = _pair_list(pairs, level, len(pairs) + m.pairs_left_out)
         else:
             body = _pair_matrix(names, pairs, level)
         cap = (f"<strong>Adjusted p-values of every pair</strong> ({_e(posthoc)}). A shaded cell counts as a "
@@ -951,11 +940,11 @@ def _shade(p: Any, level: float) -> str:
     return "s1"
 
 
-def _pair_matrix(names: Sequence[str], pairs: Sequence[Mapping[str, Any]], level: float) -> str:
+def _pair_matrix(names: Sequence[str], pairs: Sequence[PairRow], level: float) -> str:
     look: dict[tuple[str, str], tuple[float, float, bool]] = {}
     for p in pairs:
-        look[(p["a"], p["b"])] = (_f(p.get("p_adj")), _f(p.get("diff")), bool(p.get("significant")))
-        look[(p["b"], p["a"])] = (_f(p.get("p_adj")), -_f(p.get("diff")), bool(p.get("significant")))
+        look[(p.a, p.b)] = (_f(p.p_adj), _f(p.diff), p.significant)
+        look[(p.b, p.a)] = (_f(p.p_adj), -_f(p.diff), p.significant)
     head = "<tr><td></td>" + "".join(f"<th scope=\"col\">{_e(n)}</th>" for n in names[:-1]) + "</tr>"
     rows = []
     for i, r in enumerate(names):
@@ -975,37 +964,41 @@ def _pair_matrix(names: Sequence[str], pairs: Sequence[Mapping[str, Any]], level
     return f"<table class=\"matrix\"><thead>{head}</thead><tbody>{''.join(rows)}</tbody></table>"
 
 
-def _pair_list(pairs: Sequence[Mapping[str, Any]], level: float, total: int | None = None) -> str:
+def _pair_list(pairs: Sequence[PairRow], level: float, total: int | None = None) -> str:
     total = len(pairs) if total is None else total
-    hits = sorted((p for p in pairs if p.get("significant") and _ok(p.get("p_adj"))), key=lambda p: p["p_adj"])
+    hits = sorted((p for p in pairs if p.significant and _ok(p.p_adj)), key=lambda p: p.p_adj)
     if not hits:
         return f"<p class=\"quiet\">No pair at or below {lvl(level)} among {total:,} pairs.</p>"
-    rows = "".join(f"<tr><td>{_e(p['a'])}</td><td>{_e(p['b'])}</td><td class=\"num\">{num(p.get('diff'))}</td>"
-                   f"<td class=\"num {_shade(p['p_adj'], level)}\">{pval(p['p_adj'])}</td></tr>" for p in hits)
+    rows = "".join(f"<tr><td>{_e(p.a)}</td><td>{_e(p.b)}</td><td class=\"num\">{num(p.diff)}</td>"
+                   f"<td class=\"num {_shade(p.p_adj, level)}\">{pval(p.p_adj)}</td></tr>" for p in hits)
     return ("<table class=\"segments\"><thead><tr><th>a</th><th>b</th><th>a − b</th><th>p adjusted</th></tr>"
             f"</thead><tbody>{rows}</tbody></table>")
 
 
-def _reference_table(m: Mapping[str, Any], decimals: int | None, level: float, seg: str) -> str:
+def _reference_table(m: MetricResult, decimals: int | None, level: float, seg: str) -> str:
     rows = []
-    family = methods.family(m.get("posthoc"))
+    family = methods.family(m.posthoc)
     ranks = family is not None and family.ranks  # Dunn's diff is a gap in mean ranks: no units, no ratio
-    for p in m.get("pairs") or []:
+    for p in m.pairs:
         if ranks:
-            gap = num(p.get("diff"))
-        elif "ratio" in p:
-            gap = f"× {num(p.get('ratio'))} ({num(p.get('ratio_low'))} to {num(p.get('ratio_high'))})"
+            gap = num(p.diff)
+        elif p.log_scale:  # a difference of logs: the ratio of geometric means and its interval
+            gap = f"× {num(_exp(p.diff))} ({num(_exp(p.ci_low))} to {num(_exp(p.ci_high))})"
         else:
-            gap = (f"{num(p.get('diff'), decimals=decimals)} ({num(p.get('ci_low'), decimals=decimals)} to "
-                   f"{num(p.get('ci_high'), decimals=decimals)})")
-        rows.append(f"<tr><th scope=\"row\">{_e(p['a'])}</th><td class=\"num\">{gap}</td>"
-                    f"<td class=\"num {_shade(p.get('p_adj'), level) if p.get('significant') else ''}\">"
-                    f"{pval(p.get('p_adj'))}</td></tr>")
+            gap = (f"{num(p.diff, decimals=decimals)} ({num(p.ci_low, decimals=decimals)} to "
+                   f"{num(p.ci_high, decimals=decimals)})")
+        rows.append(f"<tr><th scope=\"row\">{_e(p.a)}</th><td class=\"num\">{gap}</td>"
+                    f"<td class=\"num {_shade(p.p_adj, level) if p.significant else ''}\">"
+                    f"{pval(p.p_adj)}</td></tr>")
     what = ("gap in mean rank to {ref}" if ranks else "ratio to {ref} (interval)" if any(
-        "ratio" in p for p in m.get("pairs") or []) else "gap to {ref} (interval)").format(ref=_e(m["reference"]))
+        p.log_scale for p in m.pairs) else "gap to {ref} (interval)").format(ref=_e(m.reference))
     head = (f"<tr><th scope=\"col\">{_e(seg.capitalize())}</th><th scope=\"col\">{what}</th>"
             "<th scope=\"col\">p adjusted</th></tr>")
     return f"<table class=\"segments\"><thead>{head}</thead><tbody>{''.join(rows)}</tbody></table>"
+
+
+def _exp(x: float) -> float:
+    return math.exp(x) if _ok(x) else math.nan
 
 
 def _footer(d: ReportData) -> str:

@@ -91,7 +91,7 @@ metadata = sa.MetaData()
 _SCHEMA_LOCK = threading.RLock()
 
 
-def Label(length: int = 200) -> sa.types.TypeEngine:  # noqa: N802 - reads as a column type
+def Label(length: int = 200) -> sa.types.TypeEngine:  # reads as a column type
     """A name a user or a source chooses (job, metric, segment, channel, owner).
 
     TEXT on PostgreSQL and MySQL/MariaDB, so that no length a source can hold is refused
