@@ -652,3 +652,47 @@ def test_nist_strd_certified_f_through_spark_decimals(spark_db, tmp_path, name):
     assert all(s.moments.is_exact for s in metric.segments)
     f = fisher_anova([s.moments for s in metric.segments]).statistic
     assert _lre(f, certified["f_statistic"]) >= 12.0, (name, f, certified["f_statistic"])
+
+
+# ---------------------------------------------------------------- adjust_for: per-(segment, stratum) cells
+
+ADJUSTED_METRICS = [
+    {"column": "x", "reference": "north", "adjust_for": ["cnt"]},
+    {"name": "x_log", "column": "x", "transform": "log", "test": "welch", "reference": "north",
+     "adjust_for": ["cnt"]},
+    {"column": "amount", "reference": "north", "adjust_for": ["cnt"]},  # exact decimal cells
+    {"name": "pos_by_day", "column": "pos", "reference": "north", "adjust_for": ["cnt", "d"]},  # a DATE stratum
+]
+
+
+def _cells_by_key(metric) -> dict:
+    return {(c.segment, c.levels): c for c in metric.cells.cells}
+
+
+def test_cells_pushed_down_equal_local_and_sqlite(spark_db, tables, tmp_path):
+    """The per-(segment, stratum) query of adjust_for (monitor/source/cells.py) on Spark,
+    in a session whose zone is not UTC: the same cells (n exactly, means and sums of
+    squares to 1e-9) as Spark's rows summarised locally and as SQLite's push-down (whose
+    cells equal pandas/numpy on the rows, tests/test_adjust_for.py); the adjusted test
+    (the metric's statistic) equals SQLite's to 1e-9."""
+    table, sqlite_url, _ = tables
+    extra = {"sampling": {"mode": "full"}}
+    cfg = job(spark_db.url, table, tmp_path, "ts", metrics=ADJUSTED_METRICS, **extra)
+    push = fetch(cfg)
+    local = fetch(replace(cfg, compute="local"))
+    ref = fetch(job(sqlite_url, "parcels", tmp_path, "ts", metrics=ADJUSTED_METRICS, **extra))
+    assert push.compute == "pushdown" and local.compute == "local"
+    for p, q, r in zip(push.metrics, local.metrics, ref.metrics, strict=True):
+        name = p.metric.name
+        pc, qc, rc = _cells_by_key(p), _cells_by_key(q), _cells_by_key(r)
+        assert pc.keys() == qc.keys() == rc.keys() and len(pc) > 10, name
+        for key, c in pc.items():
+            for d in (qc[key], rc[key]):
+                assert c.n == d.n, (name, key)
+                scale = max(abs(d.mean), math.sqrt(d.m2 / d.n) if d.n > 1 else 0.0, 1e-300)
+                assert abs((c.mean + c.mean_residual) - (d.mean + d.mean_residual)) <= REL * scale, (name, key)
+                assert c.m2 == pytest.approx(d.m2, rel=REL, abs=1e-12), (name, key)
+        assert p.cells.missing == q.cells.missing == r.cells.missing >= 1, name  # the row whose cnt is NULL
+        # the cells and the values left out add up to the per-segment counts
+        assert sum(c.n for c in p.cells.cells) + p.cells.missing == sum(s.moments.n for s in p.segments), name
+    assert_same(push, ref, cfg)

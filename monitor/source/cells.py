@@ -54,7 +54,7 @@ def cell_query(rel: sa.FromClause, segment_key: str, plan: MetricPlan, strata_ke
     inner += [rel.c[k].label(f"a{j}") for j, k in enumerate(strata_keys)]
     inner.append(value_or_null(plan, rel.c[plan.key], traits).label("v"))
     rows = _fence(sa.select(*inner).where(where), traits).subquery("segwatch_cell_rows")
-    d = rows.c.v - _shift_expr(plan, shift, rows.c.seg)
+    d = rows.c.v - _shift_expr(plan, shift, rows.c.seg, traits)
     middle: list[sa.ColumnElement] = [*rows.c, d.label("d")]
     if not plan.exact:
         scale = sa.literal(shift.scale, sa.Double())

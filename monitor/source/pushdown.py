@@ -83,7 +83,7 @@ import logging
 import math
 import warnings
 from dataclasses import dataclass
-from decimal import Decimal
+from decimal import Decimal, localcontext
 from fractions import Fraction
 from typing import Any, Iterable, Mapping, Sequence
 
@@ -305,9 +305,19 @@ class Shift:
         return self.k
 
     def per_segment(self, means: Mapping[Any, float]) -> Shift:
-        """This shift with one value per segment: the segments' means from a first pass."""
-        return Shift(self.k, self.scale, tuple((raw, float(m)) for raw, m in means.items()
-                                                if math.isfinite(float(m))))
+        """This shift with one value per segment: the segments' means from a first pass.
+
+        An exact (decimal) shift keeps the probe value's decimal places: the mean is
+        rounded to them, so ``value - k`` stays in the column's own digits (Spark's
+        38-digit budget, :mod:`monitor.engines.spark`) and is written as a decimal
+        literal the driver can send."""
+        finite = [(raw, float(m)) for raw, m in means.items() if math.isfinite(float(m))]
+        if self.scale is None and isinstance(self.k, Decimal) and self.k.is_finite():
+            places = Decimal(1).scaleb(min(0, self.k.as_tuple().exponent))
+            with localcontext() as ctx:
+                ctx.prec = 80
+                return Shift(self.k, None, tuple((raw, Decimal(repr(m)).quantize(places)) for raw, m in finite))
+        return Shift(self.k, self.scale, tuple(finite))
 
     @classmethod
     def from_probe(cls, plan: MetricPlan, k: Any, spread: Any) -> Shift:
