@@ -14,6 +14,7 @@ import math
 import os
 import sys
 import traceback
+from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Sequence, TextIO
 
@@ -110,7 +111,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="table (default); json: one document; jsonl: one JSON object per stored metric-period, "
                         "then per event; csv: one row per period, metric and segment")
 
-    add("check", "validate the config and reach the source and history databases")
+    p = add("check", "validate the config and reach the source and history databases")
+    p.add_argument("--period", metavar="ID",
+                   help="the period whose window is queried and counted (default: the latest complete one)")
 
     p = add("report", "write a self-contained HTML report of one stored period (reads the history only)")
     p.add_argument("--period", metavar="ID", help="a stored period (default: the latest stored one)")
@@ -275,6 +278,8 @@ def cmd_run(args: argparse.Namespace, out: TextIO) -> int:
 
 def _where(cfg: Any) -> str:
     src = cfg.source
+    if src.file:
+        return f"{Path(src.file).name}'s {src.time_column}"
     return f"{src.table}.{src.time_column}" if src.table else f"the query's {src.time_column}"
 
 
@@ -282,14 +287,24 @@ def _empty_line(job: Any, report: PeriodReport, *, latest: bool) -> str:
     """The one line for a period without rows: which window was read where, and what may be wrong."""
     cfg, p = job.config, report.period
     window = f"{_where(cfg)} in [{p.start:%Y-%m-%d %H:%M}, {p.end:%Y-%m-%d %H:%M}) {p.start.tzinfo}"
+    newest = _newest(job)
     if latest:
         before = job.history.previous(p)
         since = (f"the newest stored period is {before.period}: has the data stopped arriving?" if before
                  else "nothing is stored yet; give --period for an earlier one")
         return (f"the latest complete period, {p.ident}, of job {cfg.job} had no rows ({window}); nothing stored; "
-                f"{since}")
-    return (f"period {p.ident} of job {cfg.job} had no rows ({window}); nothing stored. If the table has rows "
-            f"then, check that source.time_column holds timestamps or dates segwatch can read")
+                f"{newest}{since}")
+    return (f"period {p.ident} of job {cfg.job} had no rows ({window}); nothing stored; {newest}if the table has "
+            f"rows then, check that source.time_column holds timestamps or dates segwatch can read (segwatch check)")
+
+
+def _newest(job: Any) -> str:
+    """'the newest record is ...; ' (or that the source has none), for the empty-period line."""
+    try:
+        newest = job.source.newest_record()
+    except SegwatchError:
+        return ""
+    return "the source has no records; " if newest is None else f"the newest record is {_time_text(newest)}; "
 
 
 def _notice(args: argparse.Namespace, text: str, code: int) -> None:
@@ -399,18 +414,39 @@ def cmd_check(args: argparse.Namespace, out: TextIO) -> int:
         info = job.source.describe()
         out.write(redact(f"source   {info.dialect} {info.server_version}: {len(info.columns)} columns, "
                          f"all configured columns present\n"))
-        period = job.period()
+        job.source.check_columns()
+        out.write(f"columns  {cfg.source.time_column} holds times segwatch can place; the metric columns "
+                  f"hold numbers\n")
+        period = job.period(args.period)
         sent = job.source.check_window(period)
+        rows = job.source.count_rows(period)
         out.write(f"window   {period.ident}: {sent} {'query' if sent == 1 else 'queries'} of the period "
-                  f"answered (no rows read)\n")
+                  f"answered; {rows:,} {'row' if rows == 1 else 'rows'} in it\n")
+        if rows == 0:
+            newest = job.source.newest_record()
+            empty = (f"period {period.ident} of job {cfg.job} has no rows ({_where(cfg)} in "
+                     f"[{period.start:%Y-%m-%d %H:%M}, {period.end:%Y-%m-%d %H:%M}) {period.start.tzinfo}); "
+                     + (f"the newest record is {_time_text(newest)}: check an earlier period with --period, "
+                        f"or check that the data still arrive" if newest is not None
+                        else "the source has no records at all"))
         job.source.check_references()
         if any(m.reference is not None for m in cfg.metrics):
             out.write(f"source   reference segments present in {cfg.source.segment_column}\n")
         out.write(redact(f"history  {job.history.describe()}: tables ready\n"))
         for s in job.sinks:
             out.write(f"alert    {redact(s.channel)}\n")
+    if rows == 0:
+        out.flush()
+        _notice(args, empty, EXIT_EMPTY)  # a run of this period would store nothing
+        return EXIT_EMPTY
     out.write("ok\n")
     return 0
+
+
+def _time_text(value: Any) -> str:
+    if isinstance(value, datetime):
+        return value.isoformat(sep=" ", timespec="seconds")
+    return str(value)
 
 
 def cmd_serve(args: argparse.Namespace, out: TextIO) -> int:

@@ -84,7 +84,8 @@ def tests() -> tuple[str, ...]:
 
 @dataclass(frozen=True, repr=False)
 class SourceConfig:
-    """Where the records come from. Exactly one of ``table`` and ``query`` is set.
+    """Where the records come from. Exactly one of ``table`` and ``query`` is set
+    (``source.file`` becomes a ``query`` over the file in an in-memory DuckDB, ``file`` its path).
 
     ``query`` is one SELECT (or WITH) statement with trailing semicolons and comments
     removed, so it can be wrapped as a subquery. ``naive_time`` says how timestamps
@@ -97,6 +98,7 @@ class SourceConfig:
     time_column: str
     segment_column: str
     naive_time: str = "local"
+    file: str | None = None  # source.file: the CSV/Parquet file behind ``query`` (DuckDB in memory)
 
     @property
     def display_url(self) -> str:
@@ -353,7 +355,10 @@ _Loader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _constru
 _TOP_KEYS = ("job", "source", "period", "timezone", "metrics", "fdr", "history", "alerts",
              "schedule", "quality", "posthoc", "alpha", "compute", "sampling", "confirm", "power",
              "scheduling", "report")
-_SOURCE_KEYS = ("url", "table", "query", "time_column", "segment_column", "naive_time")
+_SOURCE_KEYS = ("url", "table", "query", "file", "time_column", "segment_column", "naive_time")
+#: source.file: how DuckDB reads each kind of file (the name's ending, lowercase).
+FILE_READERS = {".csv": "read_csv_auto", ".tsv": "read_csv_auto", ".csv.gz": "read_csv_auto",
+                ".tsv.gz": "read_csv_auto", ".parquet": "read_parquet"}
 _METRIC_KEYS = ("column", "name", "test", "reference", "transform", "unit", "decimals", "min_effect", "label",
                 "adjust_for")
 
@@ -457,24 +462,49 @@ def _open_unit(x: float) -> bool:
 
 def _source(r: _Reader, top: dict) -> SourceConfig:
     src = r.section(top, "source", "", _SOURCE_KEYS, required=True)
-    url = _db_url(r, src, "url", "source")
-    table = r.text(src, "table", "source", "a table name", default=None)
-    query = src.get("query")
-    if table is not None and query is not None:
-        r.fail("source.query", "cannot be combined with source.table; give exactly one of them",
-               query, "either table or query")
-    if table is None and query is None:
-        r.fail("source.table", "is required unless source.query is given", _MISSING,
-               "a table name, or a SELECT statement under source.query")
-    if query is not None:
-        query = _select(r, r.text(src, "query", "source", "one SELECT statement"))
+    file = None
+    if src.get("file") is not None:
+        url, table, query, file = _file_source(r, src)
+    else:
+        url = _db_url(r, src, "url", "source")
+        table = r.text(src, "table", "source", "a table name", default=None)
+        query = src.get("query")
+        if table is not None and query is not None:
+            r.fail("source.query", "cannot be combined with source.table; give exactly one of them",
+                   query, "either table or query")
+        if table is None and query is None:
+            r.fail("source.table", "is required unless source.query is given", _MISSING,
+                   "a table name, or a SELECT statement under source.query")
+        if query is not None:
+            query = _select(r, r.text(src, "query", "source", "one SELECT statement"))
     time_column = r.text(src, "time_column", "source", "the name of the timestamp or date column")
     segment_column = r.text(src, "segment_column", "source", "the name of the column holding the segments")
     if segment_column.casefold() == time_column.casefold():
         r.fail("source.segment_column", "is the same column as source.time_column", segment_column,
                "a column other than the time column")
     naive_time = r.choice(src, "naive_time", "source", NAIVE_TIME, "naive_time", default="local")
-    return SourceConfig(url, table, query, time_column, segment_column, naive_time)
+    return SourceConfig(url, table, query, time_column, segment_column, naive_time, file)
+
+
+def _file_source(r: _Reader, src: dict) -> tuple[str, None, str, str]:
+    """``source.file``: a CSV or Parquet file read by DuckDB in memory, as a ``query:``
+    over it (DuckDB's ``read_csv_auto`` / ``read_parquet``); returns url, table, query, file."""
+    for other in ("url", "table", "query"):
+        if src.get(other) is not None:
+            r.fail(f"source.{other}", "cannot be combined with source.file (the file is read by DuckDB in memory)",
+                   src[other], "source.file alone, or source.url with source.table or source.query")
+    accepted = f"a {', '.join(FILE_READERS)} file; a relative path is taken from the config file's folder"
+    text = r.text(src, "file", "source", accepted)
+    path = r.folder_path(text)
+    name = path.name.lower()
+    ending = next((e for e in sorted(FILE_READERS, key=len, reverse=True) if name.endswith(e)), None)
+    if ending is None:
+        r.fail("source.file", "is not a file segwatch can read by its name's ending", text, accepted)
+    if not path.is_file():
+        r.fail("source.file", f"no such file: {path}" if not path.exists() else f"is not a file: {path}",
+               text, accepted)
+    literal = str(path).replace("'", "''")
+    return "duckdb:///:memory:", None, f"SELECT * FROM {FILE_READERS[ending]}('{literal}')", str(path)
 
 
 def _select(r: _Reader, sql: str) -> str:

@@ -219,7 +219,7 @@ def test_check_names_a_missing_adjust_for_column(tmp_path, capsys):
     assert code == 2 and len(err) == 1
     assert "metrics[0].adjust_for[1]: no column 'age' in the source" in err[0]
     ok = _config(tmp_path, {"column": "y", "reference": "Basic", "adjust_for": ["size"]})
-    code, out = _cli(["check", str(ok)])
+    code, out = _cli(["check", str(ok), "--period", "2026-03"])
     assert code == 0 and "reference segments present in tier" in out
 
 

@@ -476,7 +476,7 @@ def test_check_runs_a_window_query_and_shows_the_server_version(spark_db, tables
 
     Source.describe = spy
     try:
-        assert main(["check", str(path)]) == 0
+        assert main(["check", str(path), "--period", "2026-W10"]) == 0
     finally:
         Source.describe = real
     out = capsys.readouterr().out

@@ -265,6 +265,10 @@ class Engine:
     def before_create(self, url: sa.URL, role: str) -> None:
         """Anything to do before the engine is created (e.g. make a file's folder)."""
 
+    def files_relative_to(self, engine: sa.Engine, folder: str) -> None:
+        """Make relative file names in a source's SQL resolve against ``folder`` (the
+        config file's), for engines that read files named in SQL (DuckDB)."""
+
     def connect_statements(self, url: sa.URL, role: str) -> Sequence[str]:
         """Statements run on every new connection (session settings such as ``SET``)."""
         return ()
@@ -336,6 +340,11 @@ class Engine:
     def bind_naive(self, value: datetime) -> Any:
         """A window bound for a timestamp without a zone (as given, by default)."""
         return value
+
+    def placed_time(self, col: sa.ColumnElement) -> sa.ColumnElement:
+        """The time column as the window compares it (SQLite: ``datetime(col)``), read by
+        ``segwatch check`` to find values no window can place."""
+        return col
 
     def time_window(self, col: sa.ColumnElement, period: Period,
                     naive: tuple[datetime, datetime]) -> sa.ColumnElement[bool]:

@@ -5,6 +5,7 @@ as numpy columns through a temporary table."""
 from __future__ import annotations
 
 import math
+import re
 from typing import TYPE_CHECKING, Any, Iterable, Sequence
 
 import sqlalchemy as sa
@@ -59,8 +60,10 @@ class DuckDBEngine(Engine):
         kwargs = super().engine_options(url, role, read_only)
         if role != "source":
             return kwargs
-        if read_only:
-            kwargs["connect_args"] = {"read_only": True}  # DuckDB allows one writing process per file
+        if read_only and _is_file(url):
+            # DuckDB allows one writing process per file; an in-memory database (a query:
+            # over files, source.file) cannot be opened read-only and holds nothing to protect
+            kwargs["connect_args"] = {"read_only": True}
         if _is_file(url):
             # DuckDB runs inside segwatch's process: a connection returned to a pool would
             # keep the database open and its buffers (up to the memory limit) in memory
@@ -74,6 +77,22 @@ class DuckDBEngine(Engine):
             return
         own_limit = not _URL_LIMITS & set(engine.url.query)
         sa.event.listen(engine, "connect", lambda conn, rec: _on_connect(conn, own_limit))
+
+    def files_relative_to(self, engine: sa.Engine, folder: str) -> None:
+        """Relative file names in the SQL (``read_csv('parcels.csv')``) are searched in
+        ``folder``, the config file's (DuckDB's ``file_search_path``)."""
+        text = str(folder).replace("'", "''")
+        sa.event.listen(engine, "connect",
+                        lambda conn, rec: conn.execute(f"SET file_search_path = '{text}'"))
+
+    # -------------------------------------------------------------- versions
+
+    def server_version(self, conn: sa.Connection) -> tuple[str, tuple[int, ...] | None]:
+        """``SELECT version()`` (``v2.0.1``): duckdb-engine's ``server_version_info`` is
+        not DuckDB's version."""
+        text = str(conn.exec_driver_sql("SELECT version()").scalar() or "")
+        match = re.match(r"v?(\d+)\.(\d+)(?:\.(\d+))?", text)
+        return self.name, tuple(int(x) for x in match.groups() if x is not None) if match else None
 
     # -------------------------------------------------------------- reflection
 

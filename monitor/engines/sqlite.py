@@ -10,10 +10,12 @@ import sqlite3
 from datetime import datetime
 from pathlib import Path
 from typing import Any, Mapping
+from urllib.parse import quote
 
 import sqlalchemy as sa
 
-from ..errors import HistoryError
+from ..errors import HistoryError, SourceError
+from ..redact import redact
 from .base import Engine, register
 
 log = logging.getLogger(__name__)
@@ -48,7 +50,19 @@ class SQLiteEngine(Engine):
     def engine_options(self, url: sa.URL, role: str, read_only: bool) -> dict[str, Any]:
         if role == "history":
             return {"connect_args": {"timeout": HISTORY_LOCK_TIMEOUT}}
-        return super().engine_options(url, role, read_only)
+        options = super().engine_options(url, role, read_only)
+        path = _file(url)
+        if read_only and path is not None:
+            if not Path(path).is_file():
+                what = "is a folder, not a SQLite file" if Path(path).is_dir() else "no such file"
+                shown = redact(url.render_as_string(hide_password=False))
+                raise SourceError(f"source.url: cannot connect to the source {shown}: {what}: {path} (a SQLite source is opened read-only, never "
+                                  f"created; check the path: a relative one is taken from the config file's folder)")
+            # mode=ro: a mistyped path fails instead of being created as an empty file,
+            # and nothing segwatch sends can change the user's file
+            uri = f"file:{quote(str(Path(path).resolve()))}?mode=ro"
+            options["creator"] = lambda: sqlite3.connect(uri, uri=True, check_same_thread=False)
+        return options
 
     def before_create(self, url: sa.URL, role: str) -> None:
         db = url.database
@@ -93,6 +107,9 @@ class SQLiteEngine(Engine):
 
     # -------------------------------------------------------------- the time window
 
+    def placed_time(self, col: sa.ColumnElement) -> sa.ColumnElement:
+        return sa.func.datetime(col, type_=sa.String())
+
     def time_window(self, col: sa.ColumnElement, period: Any,
                     naive: tuple[datetime, datetime]) -> sa.ColumnElement[bool]:
         """SQLite stores timestamps as text: the column is normalised with
@@ -108,6 +125,14 @@ class SQLiteEngine(Engine):
         from sqlalchemy.dialects.sqlite import insert
 
         return conn.execute(insert(table).values(**row).on_conflict_do_nothing()).rowcount == 1
+
+
+def _file(url: sa.URL) -> str | None:
+    """The database file a ``sqlite:///`` URL names (None: in memory, or a ``file:`` URI)."""
+    db = url.database
+    if not db or db == ":memory:" or db.startswith("file:") or url.query.get("uri"):
+        return None
+    return db
 
 
 def _on_source_connect(dbapi_conn: Any, _record: Any) -> None:

@@ -40,8 +40,9 @@ from __future__ import annotations
 import logging
 import time
 from dataclasses import dataclass, replace
-from datetime import datetime, timezone
+from datetime import date, datetime, timezone
 from decimal import Decimal
+from pathlib import Path
 from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
 import numpy as np
@@ -57,7 +58,7 @@ from ..engines import (
     format_version,
     hash_array,
 )
-from ..errors import ConfigError, SourceError
+from ..errors import ConfigError, SegwatchError, SourceError
 from ..redact import one_line, redact
 from ..model import MetricInput, QualityCounts, SegmentInput
 from ..periods import Period
@@ -110,9 +111,14 @@ class Source:
     def __init__(self, job: JobConfig, engine: Engine | None = None):
         self.job = job
         self.cfg: SourceConfig = job.source
-        self.engine = engine or engines.create_engine(self.cfg.url, "source", read_only=True)
+        try:
+            self.engine = engine or engines.create_engine(self.cfg.url, "source", read_only=True)
+        except SegwatchError as exc:  # name the job file too
+            raise type(exc)(f"{job.path}: {exc}") from exc
         #: What differs on this database engine (monitor.engines).
         self.backend = engines.for_dialect(self.engine.dialect)
+        if engine is None and job.path:
+            self.backend.files_relative_to(self.engine, str(Path(job.path).resolve().parent))
         self._from: sa.FromClause | None = None
         self._version: tuple[str, tuple[int, ...] | None] | None = None
         self._fallback_logged = False
@@ -215,6 +221,97 @@ class Source:
         name, version = self._version or ("unknown", None)
         # the engine's own name (Spark speaks PyHive's "hive" dialect; MariaDB MySQL's)
         return SourceInfo(name, format_version(version), tuple(c.name for c in rel.columns))
+
+    def check_columns(self, limit: int = 100) -> None:
+        """Check what the time and metric columns hold, before any period is read (for
+        ``segwatch check``): a time column of numbers (epoch seconds) or of text the
+        engine cannot place in time (``02/03/2026 14:30``) would give every period 0
+        rows, and a text metric column nothing but data-quality events.
+
+        Reads at most ``limit`` non-NULL values of the time column (as the engine
+        normalises them for the window, :meth:`Engine.placed_time`) and of each metric
+        column whose type is unknown (a ``query:`` source).
+
+        Raises
+        ------
+        ConfigError
+            One line naming the key, the column, an example value and the fix.
+        """
+        rel = self._relation()
+        name = self.cfg.time_column
+        col = rel.c[name]
+        key = f"{self.job.path}: source.time_column"
+        fix = _TIME_FIXES.get(self.backend.name, _TIME_FIXES["generic"])
+        ctype = self.backend.column_type(col.type)
+        if isinstance(ctype, (sa.Integer, sa.Float, sa.Numeric)) and not isinstance(ctype, sa.Boolean):
+            raise ConfigError(
+                f"{key}: {name!r} has type {_type_text(ctype)}, numbers, not timestamps or dates; if they are "
+                f"Unix epoch seconds, convert them in a source.query: {fix[0].format(c=name)} "
+                f"(README, 'Time columns')")
+        raw_col = sa.type_coerce(col, sa.types.NullType())  # the driver's value (SQLite: no date parsing)
+        stmt = sa.select(raw_col, self.backend.placed_time(col)).where(col.is_not(None)).limit(limit)
+        metric_cols = [(i, m.column) for i, m in enumerate(self.job.metrics)]
+        try:
+            with self._connect() as conn:
+                rows = conn.execute(stmt).all()
+                typed = {}
+                for i, c in metric_cols:
+                    mtype = self.backend.column_type(rel.c[c].type)
+                    if isinstance(mtype, sa.types.NullType) and c not in typed:
+                        mc = rel.c[c]
+                        typed[c] = [v for (v,) in conn.execute(sa.select(mc).where(mc.is_not(None)).limit(limit))]
+        except SQLAlchemyError as exc:
+            raise SourceError(f"{self.job.path}: source: reading values of {name!r} failed: {one_line(exc)}") from exc
+        bad = [(raw, placed) for raw, placed in rows if not _placed(placed)]
+        if bad:
+            raw = bad[0][0]
+            count = f"{len(bad)} of the {len(rows)} values read"
+            if isinstance(raw, (int, float, Decimal)) and not isinstance(raw, bool):
+                raise ConfigError(
+                    f"{key}: {name!r} holds numbers (e.g. {raw!r}; {count}), not timestamps or dates; if they are "
+                    f"Unix epoch seconds, convert them in a source.query: {fix[0].format(c=name)} "
+                    f"(README, 'Time columns')")
+            raise ConfigError(
+                f"{key}: {name!r} holds text segwatch cannot place in time (e.g. {str(raw)[:40]!r}; {count}); "
+                f"it reads ISO 8601 text (2026-03-02 14:30:00, 2026-03-02T14:30:00+01:00, 2026-03-02) and "
+                f"timestamp or date columns; convert other text in a source.query, e.g. for "
+                f"'02/03/2026 14:30': {fix[1].format(c=name)} (README, 'Time columns')")
+        for i, c in metric_cols:
+            mtype = self.backend.column_type(rel.c[c].type)
+            where = f"{self.job.path}: metrics[{i}].column"
+            if isinstance(mtype, (sa.String, sa.Date, sa.DateTime, sa.Time, sa.LargeBinary, sa.Interval)):
+                raise ConfigError(
+                    f"{where}: {c!r} has type {_type_text(mtype)}, not a number; point the metric at a numeric "
+                    f"column, or convert it in a source.query (CAST({c} AS DOUBLE PRECISION) AS {c})")
+            text = [v for v in typed.get(c, ()) if isinstance(v, (str, bytes))]
+            if text:
+                raise ConfigError(
+                    f"{where}: {c!r} holds text (e.g. {str(text[0])[:40]!r}; {len(text)} of the "
+                    f"{len(typed[c])} values read), not numbers; point the metric at a numeric column, or "
+                    f"convert it in the source.query (CAST({c} AS DOUBLE) AS {c})")
+
+    def count_rows(self, period: Period) -> int:
+        """The number of records in ``period``'s window (a real query: for ``segwatch check``)."""
+        rel = self._relation()
+        stmt = sa.select(sa.func.count()).select_from(rel).where(self.window_clause(period))
+        try:
+            with self._connect() as conn:
+                return int(conn.execute(stmt).scalar() or 0)
+        except SQLAlchemyError as exc:
+            raise SourceError(
+                f"{self.job.path}: counting the rows of period {period.ident} on {redact(self.cfg.url)} "
+                f"failed: {one_line(exc)}") from exc
+
+    def newest_record(self) -> Any:
+        """The time column's largest value as the window reads it (None: no records)."""
+        rel = self._relation()
+        col = rel.c[self.cfg.time_column]
+        try:
+            with self._connect() as conn:
+                return conn.execute(sa.select(sa.func.max(self.backend.placed_time(col)))).scalar()
+        except SQLAlchemyError as exc:
+            raise SourceError(f"{self.job.path}: reading the newest {self.cfg.time_column!r} failed: "
+                              f"{one_line(exc)}") from exc
 
     def check_window(self, period: Period) -> int:
         """Send the period's queries as a run would build them, for no rows (``LIMIT 0``):
@@ -682,6 +779,41 @@ def _transform(values: np.ndarray, transform: str) -> np.ndarray:
     if transform == "log1p":
         return np.log1p(values)
     return values
+
+
+#: Per engine: how to convert Unix epoch seconds, and text like '02/03/2026 14:30', in a
+#: source.query (the hints of Source.check_columns; README, "Time columns").
+_TIME_FIXES = {
+    "sqlite": ("datetime({c}, 'unixepoch') AS {c}",
+               "substr({c}, 7, 4) || '-' || substr({c}, 4, 2) || '-' || substr({c}, 1, 2) || substr({c}, 11) AS {c}"),
+    "duckdb": ("to_timestamp({c}) AS {c}", "strptime({c}, '%d/%m/%Y %H:%M') AS {c}"),
+    "postgresql": ("to_timestamp({c}) AS {c}", "to_timestamp({c}, 'DD/MM/YYYY HH24:MI') AS {c}"),
+    "mysql": ("FROM_UNIXTIME({c}) AS {c}", "STR_TO_DATE({c}, '%d/%m/%Y %H:%i') AS {c}"),
+    "spark": ("timestamp_seconds({c}) AS {c}", "to_timestamp({c}, 'dd/MM/yyyy HH:mm') AS {c}"),
+    "generic": ("CAST({c} AS TIMESTAMP) from your engine's epoch conversion",
+                "your engine's text-to-timestamp function AS {c}"),
+}
+
+
+def _placed(value: Any) -> bool:
+    """Whether a time value, as the engine normalised it, can be placed in a window."""
+    if isinstance(value, (datetime, date)):
+        return True
+    if isinstance(value, str):
+        text = value.strip()
+        try:
+            datetime.fromisoformat(text[:-1] + "+00:00" if text.endswith(("Z", "z")) else text)
+        except ValueError:
+            return False
+        return True
+    return False
+
+
+def _type_text(ctype: Any) -> str:
+    try:
+        return str(ctype)
+    except Exception:  # noqa: BLE001 - some types cannot render without a dialect
+        return type(ctype).__name__
 
 
 def _local_cells(frame: pd.DataFrame, m: MetricConfig, name: str, strata: Sequence[str]) -> CellData:
