@@ -503,6 +503,11 @@ def _file_source(r: _Reader, src: dict) -> tuple[str, None, str, str]:
     if not path.is_file():
         r.fail("source.file", f"no such file: {path}" if not path.exists() else f"is not a file: {path}",
                text, accepted)
+    import importlib.util
+
+    if importlib.util.find_spec("duckdb_engine") is None:
+        r.fail("source.file", "is read through DuckDB, which is not installed", text,
+               "pip install duckdb duckdb-engine (or the engines extra: pip install -e '.[engines]')")
     literal = str(path).replace("'", "''")
     return "duckdb:///:memory:", None, f"SELECT * FROM {FILE_READERS[ending]}('{literal}')", str(path)
 

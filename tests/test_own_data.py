@@ -300,3 +300,17 @@ def test_a_query_over_a_day_month_year_csv_is_refused_with_duckdbs_fix(tmp_path,
     code, out, err = cli(["check", str(fixed), "--period", "2026-W10"], capsys)
     assert code == 0 and "240 rows in it" in out, (out, err)
 
+
+
+def test_source_file_without_duckdb_says_what_to_install(tmp_path, capsys, monkeypatch):
+    import importlib.util
+
+    real = importlib.util.find_spec
+    monkeypatch.setattr(importlib.util, "find_spec", lambda name, *a: None if name == "duckdb_engine" else real(name, *a))
+    _csv(tmp_path / "parcels.csv")
+    cfg = write_config(tmp_path, {"file": "parcels.csv"})
+    code, out, err = cli(["check", str(cfg)], capsys)
+    assert code == 2 and len(err) == 1, err
+    assert err[0] == (f"Error: {cfg}: source.file: is read through DuckDB, which is not installed (given: "
+                      "'parcels.csv'; accepted: pip install duckdb duckdb-engine (or the engines extra: "
+                      "pip install -e '.[engines]'))")
