@@ -171,15 +171,17 @@ def test_run_of_an_empty_latest_period_names_the_newest_record(tmp_path, capsys)
 # ---------------------------------------------------------------- SQLite files: read-only, never created
 
 
-def test_a_mistyped_sqlite_path_is_not_created(tmp_path, capsys):
+def test_a_mistyped_sqlite_path_is_not_created(tmp_path, capsys, monkeypatch):
+    monkeypatch.setattr("monitor.source.reader.RETRY_BASE_SECONDS", 0.0)
     write_sqlite(tmp_path / "own.sqlite", "TEXT", iso)
     cfg = write_config(tmp_path, {"url": "sqlite:///onw.sqlite", "table": "parcels"})
     for command in ("check", "run"):
         code, out, err = cli([command, str(cfg)], capsys)
         assert code == 1 and len(err) == 1, err
-        assert err[0] == (f"Error: {cfg}: source.url: cannot connect to the source sqlite:///{tmp_path / 'onw.sqlite'}: no such file: {tmp_path / 'onw.sqlite'} (a SQLite source is "
-                          "opened read-only, never created; check the path: a relative one is taken from the "
-                          "config file's folder)")
+        assert err[0] == (f"Error: cannot connect to the source sqlite:///{tmp_path / 'onw.sqlite'} after 3 attempts: "
+                          f"no such file: {tmp_path / 'onw.sqlite'} (a SQLite source is opened read-only, never "
+                          "created; check the path in source.url: a relative one is taken from the config file's "
+                          "folder)")
         assert not (tmp_path / "onw.sqlite").exists()
 
 

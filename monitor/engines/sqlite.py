@@ -14,8 +14,7 @@ from urllib.parse import quote
 
 import sqlalchemy as sa
 
-from ..errors import HistoryError, SourceError
-from ..redact import redact
+from ..errors import HistoryError
 from .base import Engine, register
 
 log = logging.getLogger(__name__)
@@ -53,15 +52,21 @@ class SQLiteEngine(Engine):
         options = super().engine_options(url, role, read_only)
         path = _file(url)
         if read_only and path is not None:
-            if not Path(path).is_file():
-                what = "is a folder, not a SQLite file" if Path(path).is_dir() else "no such file"
-                shown = redact(url.render_as_string(hide_password=False))
-                raise SourceError(f"source.url: cannot connect to the source {shown}: {what}: {path} (a SQLite source is opened read-only, never "
-                                  f"created; check the path: a relative one is taken from the config file's folder)")
-            # mode=ro: a mistyped path fails instead of being created as an empty file,
-            # and nothing segwatch sends can change the user's file
-            uri = f"file:{quote(str(Path(path).resolve()))}?mode=ro"
-            options["creator"] = lambda: sqlite3.connect(uri, uri=True, check_same_thread=False)
+            # mode=ro: a mistyped path fails instead of being created as an empty file, and
+            # nothing segwatch sends can change the user's file; a file that is missing (or a
+            # folder away for a while) fails to connect, retried as any connection is
+            file = Path(path).resolve()
+            uri = f"file:{quote(str(file))}?mode=ro"
+
+            def _open() -> sqlite3.Connection:
+                if not file.is_file():
+                    what = "is a folder, not a SQLite file" if file.is_dir() else "no such file"
+                    raise sqlite3.OperationalError(
+                        f"{what}: {file} (a SQLite source is opened read-only, never created; check the "
+                        "path in source.url: a relative one is taken from the config file's folder)")
+                return sqlite3.connect(uri, uri=True, check_same_thread=False)
+
+            options["creator"] = _open
         return options
 
     def before_create(self, url: sa.URL, role: str) -> None:
