@@ -3,8 +3,10 @@
     python tests/bench_pushdown.py                       # 2,000,000 rows x 20 metrics x 50 segments
     python tests/bench_pushdown.py --rows 200000 --engines duckdb
     python tests/bench_pushdown.py --rows 20000000 --engines duckdb --skip-pull
+    python tests/bench_pushdown.py --engines spark,sqlite,postgresql --skip-pull \
+        --spark hive://segwatch@127.0.0.1:PORT/default
 
-For each engine (SQLite, DuckDB, PostgreSQL) it builds a table of ``--rows`` rows
+For each engine (SQLite, DuckDB, PostgreSQL; Spark SQL with ``--spark``) it builds a table of ``--rows`` rows
 (generated inside the database with SQL, so generation stays fast), then measures,
 each in a fresh child process so that peak memory (``ru_maxrss`` from ``wait4``) is
 that of the measured work alone:
@@ -49,6 +51,7 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 PERIOD = "2026-W10"
 TABLE = "bench_events"
+MONDAY_EPOCH = 1772409600  # 2026-03-02 00:00:00 UTC, the period's first second
 
 
 ALL_DIFFER = False  # --all-differ: a segment effect on every metric (every metric significant)
@@ -94,6 +97,13 @@ def generate_sql(engine: str, rows: int, metrics: int) -> list[str]:
             f"INSERT INTO {TABLE} SELECT i, datetime('2026-03-02', '+' || (i % 604800) || ' seconds'), "
             f"'depot' || printf('%02d', i % 50), {exprs} FROM c",
         ]
+    if engine == "spark":  # a parquet table written by the Thrift server's own executors
+        exprs = ", ".join(f"CAST({metric_expr(j, f'rand({42 + j})', 'id')} AS DOUBLE) AS m{j}" for j in range(metrics))
+        return [
+            f"DROP TABLE IF EXISTS {TABLE}",
+            f"CREATE TABLE {TABLE} USING parquet AS SELECT id, timestamp_seconds({MONDAY_EPOCH} + id % 604800) AS ts, "
+            f"concat('depot', lpad(CAST(id % 50 AS STRING), 2, '0')) AS seg, {exprs} FROM range(1, {rows + 1})",
+        ]
     raise ValueError(engine)
 
 
@@ -115,7 +125,7 @@ def build(engine: str, url: str, rows: int, metrics: int) -> float:
         for stmt in generate_sql(engine, rows, metrics):
             if stmt.startswith("VACUUM"):
                 continue
-            conn.exec_driver_sql(stmt.replace("%", "%%") if engine == "postgresql" else stmt)
+            conn.exec_driver_sql(stmt.replace("%", "%%") if engine in ("postgresql", "spark") else stmt)
     if engine == "postgresql":
         with eng.connect().execution_options(isolation_level="AUTOCOMMIT") as conn:
             conn.exec_driver_sql(f"VACUUM ANALYZE {TABLE}")
@@ -203,7 +213,9 @@ PULL = textwrap.dedent("""
     from monitor.engines import create_engine
     eng = create_engine(url, "source", read_only=True)
     cols = ", ".join(f"m{j}" for j in range(metrics))
-    if engine == "sqlite":
+    if engine == "spark":  # segwatch's engine sets the session zone to UTC
+        where = "ts >= TIMESTAMP '2026-03-02 00:00:00+00:00' AND ts < TIMESTAMP '2026-03-09 00:00:00+00:00'"
+    elif engine == "sqlite":
         where = "datetime(ts) >= '2026-03-02 00:00:00' AND datetime(ts) < '2026-03-09 00:00:00'"
     else:
         where = "ts >= TIMESTAMP '2026-03-02 00:00:00' AND ts < TIMESTAMP '2026-03-09 00:00:00'"
@@ -243,6 +255,9 @@ def main() -> int:
     ap.add_argument("--metrics", type=int, default=20)
     ap.add_argument("--engines", default="sqlite,duckdb,postgresql")
     ap.add_argument("--postgres", default="postgresql+psycopg://postgres@127.0.0.1:5432/segwatch_test")
+    ap.add_argument("--spark", default=None,
+                    help="a Spark Thrift server's URL, hive://user@host:port/database (engine 'spark'; "
+                         "bash .ci/spark.sh start DIR starts one, its port in DIR/local.port)")
     ap.add_argument("--workdir", default=None, help="folder for the SQLite/DuckDB files (default: a temp folder)")
     ap.add_argument("--skip-pull", action="store_true", help="leave out the pull-into-pandas measurement")
     ap.add_argument("--all-differ", action="store_true",
@@ -262,7 +277,11 @@ def main() -> int:
             "sqlite": f"sqlite:///{folder / 'bench.sqlite'}",
             "duckdb": f"duckdb:///{folder / 'bench.duckdb'}",
             "postgresql": args.postgres,
+            "spark": args.spark,
         }[engine]
+        if url is None:
+            print(f"{engine}: skipped (give its URL with --{engine})", file=sys.stderr)
+            continue
         try:  # in a child process, so that no connection to the file outlives it
             _, _, out = measure([py, str(Path(__file__).resolve()), "--build", engine, url,
                                  str(args.rows), str(args.metrics),
