@@ -309,24 +309,31 @@ def finalise(results: Sequence[MetricResult], job: JobConfig) -> tuple[MetricRes
     level = job.alpha
     if job.fdr.pairs == "selective" and m:
         level = job.alpha * sum(sig_all) / m
-    out = []
-    for r, qv, sig in zip(results, q, sig_all):
-        pairs = tuple(
-            _with_significant(pr, bool(sig and math.isfinite(pr.p_adj) and pr.p_adj <= level))
-            for pr in r.pairs
+    return tuple(gate(replace(r, q_value=float(qv)), sig, level, job) for r, qv, sig in zip(results, q, sig_all))
+
+
+def gate(r: MetricResult, significant: bool, level: float, job: JobConfig) -> MetricResult:
+    """``r`` with the significance gate applied: ``significant`` set, its pairs read at
+    ``level`` only when it is significant, and each segment's flag its direction then.
+
+    Used by :func:`finalise` (``significant`` is ``q <= fdr.level``) and by the decision
+    rule of :mod:`monitor.decisions` (``significant`` is the announced state).
+    """
+    pairs = tuple(
+        _with_significant(pr, bool(significant and math.isfinite(pr.p_adj) and pr.p_adj <= level))
+        for pr in r.pairs
+    )
+    segs = r.segments
+    if level != job.alpha and r.posthoc is not None:
+        labels = [s.segment for s in r.segments if not s.excluded and s.n > 0]
+        verdicts = _segment_verdicts(labels, r.pairs, r.reference, level)
+        segs = tuple(
+            replace(s, above=verdicts[s.segment][0], below=verdicts[s.segment][1],
+                    direction=verdicts[s.segment][2]) if s.segment in verdicts else s
+            for s in segs
         )
-        segs = r.segments
-        if level != job.alpha and r.posthoc is not None:
-            labels = [s.segment for s in r.segments if not s.excluded and s.n > 0]
-            verdicts = _segment_verdicts(labels, r.pairs, r.reference, level)
-            segs = tuple(
-                replace(s, above=verdicts[s.segment][0], below=verdicts[s.segment][1],
-                        direction=verdicts[s.segment][2]) if s.segment in verdicts else s
-                for s in segs
-            )
-        segs = tuple(replace(s, flag=s.direction if sig else None) for s in segs)
-        out.append(replace(r, q_value=float(qv), significant=sig, pairs=pairs, segments=segs, pair_level=level))
-    return tuple(out)
+    segs = tuple(replace(s, flag=s.direction if significant else None, held=0) for s in segs)
+    return replace(r, significant=significant, pairs=pairs, segments=segs, pair_level=level)
 
 
 def _with_significant(pair: PairRow, significant: bool) -> PairRow:

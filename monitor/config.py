@@ -145,6 +145,34 @@ class FdrConfig:
 
 
 @dataclass(frozen=True)
+class DecisionConfig:
+    """When a metric "now differs", and when an assumption check "now fails" (see
+    :mod:`monitor.decisions`).
+
+    ``rule``: ``two_period`` (the default: this period's evidence with the previous
+    period's, held to a level set from the yearly budgets, with hysteresis) or
+    ``per_period`` (each period alone: ``q <= fdr.level``, with ``confirm``).
+    ``false_alarms_per_year``: the expected number of false metric-level alarms a year
+    the job may raise; ``check_alarms_per_year`` the same for assumption checks.
+    ``weight_now``: the share of the level spent on this period alone.
+    ``clear_above`` and ``quiet_periods``: an announcement is taken back after
+    ``quiet_periods`` periods in a row whose p-values are all above ``clear_above``.
+    """
+
+    rule: str = "two_period"
+    false_alarms_per_year: float = 1.0
+    check_alarms_per_year: float = 1.0
+    weight_now: float = 0.2
+    clear_above: float = 0.10
+    quiet_periods: int = 2
+
+    def to_json(self) -> dict[str, Any]:
+        return {"rule": self.rule, "false_alarms_per_year": self.false_alarms_per_year,
+                "check_alarms_per_year": self.check_alarms_per_year, "weight_now": self.weight_now,
+                "clear_above": self.clear_above, "quiet_periods": self.quiet_periods}
+
+
+@dataclass(frozen=True)
 class SamplingConfig:
     """How values (for ranks and diagnostics) are obtained when sums are pushed down.
 
@@ -236,6 +264,7 @@ class JobConfig:
     power: float = 0.8
     scheduling: ScheduleOptions = ScheduleOptions()
     report: ReportConfig = ReportConfig()
+    decision: DecisionConfig = DecisionConfig()
 
     @property
     def zone(self) -> ZoneInfo:
@@ -252,7 +281,7 @@ def config_hash(cfg: JobConfig) -> str:
 
     It covers each metric's name, column, test, reference, transform, min_effect and
     adjust_for (in name order, since order changes no result), the FDR method and level, ``alpha``,
-    the post-hoc settings and the quality limits. Labels, units, decimals, alerts,
+    the post-hoc settings, the quality limits and the decision rule. Labels, units, decimals, alerts,
     schedule and the source are left out. Returns 12 hex digits of a SHA-256.
     """
     settings = {
@@ -268,6 +297,7 @@ def config_hash(cfg: JobConfig) -> str:
         "alpha": cfg.alpha,
         "posthoc": [cfg.posthoc.dunn_adjust, cfg.posthoc.confidence],
         "quality": [cfg.quality.max_bad_share, cfg.quality.min_rows_per_segment],
+        "decision": cfg.decision.to_json(),
     }
     blob = json.dumps(settings, sort_keys=True, separators=(",", ":"))
     return hashlib.sha256(blob.encode("utf-8")).hexdigest()[:12]
@@ -352,9 +382,38 @@ _Loader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _constru
 
 # -- validation --------------------------------------------------------------------------
 
+
+def _decision(r: "_Reader", top: dict) -> DecisionConfig:
+    d = r.section(top, "decision", "", _DECISION_KEYS)
+    budget = "a positive number of false alarms a year, e.g. 1 (or 0.5 for one in two years)"
+    return DecisionConfig(
+        rule=r.choice(d, "rule", "decision", ("two_period", "per_period"), "decision rule", default="two_period"),
+        false_alarms_per_year=r.number(d, "false_alarms_per_year", "decision", lambda x: 0 < x <= 1000, budget,
+                                       default=1.0),
+        check_alarms_per_year=r.number(d, "check_alarms_per_year", "decision", lambda x: 0 < x <= 1000, budget,
+                                       default=1.0),
+        weight_now=r.number(d, "weight_now", "decision", lambda x: 0 < x < 1,
+                            "a share strictly between 0 and 1, e.g. 0.2", default=0.2),
+        clear_above=r.number(d, "clear_above", "decision", lambda x: 0 < x < 1,
+                             "a p-value strictly between 0 and 1, e.g. 0.1", default=0.10),
+        quiet_periods=r.integer(d, "quiet_periods", "decision", lambda x: 1 <= x <= 52,
+                                "a whole number from 1 to 52", default=2),
+    )
+
+
+def _confirm(r: "_Reader", top: dict, decision: DecisionConfig) -> int:
+    confirm = r.integer(top, "confirm", "", lambda x: 1 <= x <= 52, "a whole number from 1 to 52", default=1)
+    if confirm > 1 and decision.rule != "per_period":
+        r.fail("confirm", "applies only to decision.rule: per_period (the default two_period rule already "
+               "weighs the previous period); add `decision: {rule: per_period}` or drop confirm",
+               confirm, "1, or any whole number up to 52 with decision.rule: per_period")
+    return confirm
+
 _TOP_KEYS = ("job", "source", "period", "timezone", "metrics", "fdr", "history", "alerts",
              "schedule", "quality", "posthoc", "alpha", "compute", "sampling", "confirm", "power",
-             "scheduling", "report")
+             "scheduling", "report", "decision")
+_DECISION_KEYS = ("rule", "false_alarms_per_year", "check_alarms_per_year", "weight_now", "clear_above",
+                  "quiet_periods")
 _SOURCE_KEYS = ("url", "table", "query", "file", "time_column", "segment_column", "naive_time")
 #: source.file: how DuckDB reads each kind of file (the name's ending, lowercase).
 FILE_READERS = {".csv": "read_csv_auto", ".tsv": "read_csv_auto", ".csv.gz": "read_csv_auto",
@@ -394,6 +453,7 @@ def parse_config(data: Mapping, path: str | os.PathLike[str], environ: Mapping[s
     sampling = r.section(top, "sampling", "", ("mode", "cap", "seed"))
     scheduling = r.section(top, "scheduling", "", ("settle_minutes", "lookback"))
     report = r.section(top, "report", "", ("periods", "path", "attach"))
+    decision = _decision(r, top)
     report_path = r.text(report, "path", "report", "a file path, may contain {period}", default=None)
     history = r.section(top, "history", "", ("url",))
     quality = r.section(top, "quality", "", ("max_bad_share", "min_rows_per_segment"))
@@ -435,7 +495,8 @@ def parse_config(data: Mapping, path: str | os.PathLike[str], environ: Mapping[s
             seed=r.integer(sampling, "seed", "sampling", lambda x: x >= 0, "a whole number of at least 0",
                            default=0),
         ),
-        confirm=r.integer(top, "confirm", "", lambda x: 1 <= x <= 52, "a whole number from 1 to 52", default=1),
+        confirm=_confirm(r, top, decision),
+        decision=decision,
         power=r.number(top, "power", "", _open_unit, "a probability between 0 and 1, e.g. 0.8", default=0.8),
         scheduling=ScheduleOptions(
             settle_minutes=r.integer(scheduling, "settle_minutes", "scheduling", lambda x: 0 <= x <= 60 * 24 * 31,

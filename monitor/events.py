@@ -68,7 +68,9 @@ from typing import Any, Mapping, Protocol, Sequence
 
 from . import methods
 from .config import JobConfig
-from .model import EVENT_KINDS, Event, MetricResult  # noqa: F401 - Event re-exported for callers of this module
+from .model import (  # noqa: F401 - Event re-exported for callers of this module
+    EVENT_KINDS, RULE_TWO_PERIOD, Event, MetricResult,
+)
 
 log = logging.getLogger(__name__)
 
@@ -141,7 +143,8 @@ class Baseline:
         flg = {}
         chk = {}
         for name, entry in metrics.items():
-            important = _important(_effect(entry), min_effect.get(name))
+            # under the two-period rule the stored verdict is already the announced state
+            important = _two_period(entry) or _important(_effect(entry), min_effect.get(name))
             sig[name] = bool(entry.get("significant")) and important
             # flags of a metric below its min_effect were never announced (derive_events drops them)
             flg[name] = {s["segment"]: s["flag"] for s in entry.get("segments", []) if s.get("flag")} \
@@ -214,6 +217,10 @@ def _extend(run: Run | None, verdict: bool | str | None, period: str) -> Run:
     if run is not None and run.verdict == verdict:
         return Run(verdict, run.length + 1, run.since)
     return Run(verdict, 1, period)
+
+
+def _two_period(entry: Mapping[str, Any]) -> bool:
+    return (entry.get("decision") or {}).get("rule") == RULE_TWO_PERIOD
 
 
 def _effect(entry: Mapping[str, Any]) -> float | None:
@@ -317,7 +324,20 @@ def derive_events(
         now_sig = r.significant and important
         prev_flags = baseline.flags.get(r.metric, {})
         now_flags = r.flagged if important else {}
-        if k == 1:
+        two = r.decision is not None and r.decision.rule == RULE_TWO_PERIOD
+        if two:  # the announced state is the decision rule's (monitor.decisions): no second gate here
+            now_flags = r.flagged
+            if r.decision.change == "on":
+                out.append(_metric_emerged(r, seg_word, eff, None, prev_label))
+            elif r.decision.change == "off":
+                out.append(_metric_cleared(r, m, seg_word, eff, important, None, job.decision.quiet_periods))
+            for seg, flag in sorted(now_flags.items()):
+                if prev_flags.get(seg) != flag:
+                    out.append(_segment_emerged(r, seg, flag, seg_word, unit, decimals, None))
+            for seg, flag in sorted(prev_flags.items()):
+                if now_flags.get(seg) != flag and seg in now_set and r.computed:
+                    out.append(_segment_cleared(r, seg, flag, seg_word, None))
+        elif k == 1:
             if now_sig and not was:
                 out.append(_metric_emerged(r, seg_word, eff, None, prev_label))
             elif was and not now_sig and r.computed:
@@ -349,6 +369,9 @@ def derive_events(
 
         # assumptions
         prev_checks = baseline.checks.get(r.metric, {})
+        if two:
+            out.extend(_check_events(r))
+            continue
         for name, chk in r.assumptions.items():
             if name not in r.relevant_checks:
                 continue
@@ -369,6 +392,36 @@ def derive_events(
     return out
 
 
+def _check_events(r: MetricResult) -> list[Event]:
+    """Assumption events under the two-period rule: a watched check announced as
+    failing (or taken back) by its verdict (see :mod:`monitor.decisions`)."""
+    out = []
+    for name, verdict in r.check_decisions.items():
+        chk = r.assumptions.get(name)
+        if verdict.change is None or chk is None:
+            continue
+        label = CHECK_NAMES.get(name, name)
+        detail = {"check": name, "value": chk.value, "threshold": chk.threshold, "method": r.method,
+                  "evidence": verdict.evidence, "level": verdict.level}
+        if verdict.change == "on":
+            out.append(Event(
+                "assumption_broken", r.metric, None,
+                f"{r.metric}: the {label} fails ({chk.detail.rstrip('.')}; {_evidence_text(verdict)}); "
+                f"method used: {r.method}.", detail, subject=name))
+        else:
+            out.append(Event(
+                "assumption_restored", r.metric, None,
+                f"{r.metric}: the {label} passes again ({chk.detail.rstrip('.')}).", detail, subject=name))
+    return out
+
+
+def _evidence_text(v: Any) -> str:
+    """How strong the evidence was, in words people can check: this period alone or with the previous one."""
+    if v.p_before is not None and v.combined is not None:
+        return f"evidence {_p(v.evidence)} over this period and {v.before}, level {_p(v.level)}"
+    return f"evidence {_p(v.evidence)} from this period alone, level {_p(v.level)}"
+
+
 def _confirmed(run: Run | None) -> tuple[str, dict[str, Any]]:
     """The message tail and detail fields of an event raised under ``confirm: K >= 2``."""
     if run is None:
@@ -380,6 +433,14 @@ def _confirmed(run: Run | None) -> tuple[str, dict[str, Any]]:
 def _metric_emerged(r: MetricResult, seg_word: str, eff: float, run: Run | None, prev_label: str) -> Event:
     eff_text = f", {r.effect_size.name.replace('_', ' ')} {_fmt(eff)}" if r.effect_size else ""
     tail, extra = _confirmed(run) if run is not None else (f"; it did not {prev_label}", {})
+    v = r.decision
+    if v is not None and v.rule == RULE_TWO_PERIOD:
+        return Event(
+            "emerged", r.metric, None,
+            f"{r.metric} now differs by {seg_word} ({r.method}, p = {_p(r.p_value)}{eff_text}; "
+            f"{_evidence_text(v)}).",
+            {"method": r.method, "p_value": r.p_value, "q_value": r.q_value, "effect": eff,
+             "evidence": v.evidence, "level": v.level, "p_before": v.p_before, "before": v.before})
     return Event(
         "emerged", r.metric, None,
         f"{r.metric} now differs by {seg_word} ({r.method}, q = {_p(r.q_value)}{eff_text}){tail}.",
@@ -387,10 +448,14 @@ def _metric_emerged(r: MetricResult, seg_word: str, eff: float, run: Run | None,
 
 
 def _metric_cleared(r: MetricResult, m: Any, seg_word: str, eff: float, important: bool,
-                    run: Run | None) -> Event:
+                    run: Run | None, quiet_periods: int = 1) -> Event:
     tail, extra = _confirmed(run)
     why = "" if r.significant else f" (q = {_p(r.q_value)})"
-    if r.significant and not important:
+    v = r.decision
+    if v is not None and v.rule == RULE_TWO_PERIOD:
+        why = (f" (p = {_p(r.p_value)}; no evidence in {quiet_periods} periods in a row)" if quiet_periods > 1
+               else f" (p = {_p(r.p_value)}; no evidence this period)")
+    elif r.significant and not important:
         why = f" at the practical threshold ({r.effect_size.name.replace('_', ' ')} {_fmt(eff)} < {m.min_effect})"
     return Event(
         "cleared", r.metric, None,

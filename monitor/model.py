@@ -69,9 +69,15 @@ EVENT_KINDS = (
 QUANTILE_LEVELS = (0.05, 0.25, 0.50, 0.75, 0.95)
 QUANTILE_KEYS = ("q05", "q25", "q50", "q75", "q95")
 
-#: The decision rule a verdict is judged by (the only one so far): a metric differs when
-#: its q-value is at most ``fdr.level``; an event is raised only when its effect is at
-#: least ``min_effect`` (see :mod:`monitor.events`).
+#: The decision rules a verdict can be judged by (``decision.rule`` in the config):
+#: ``per_period`` - a metric differs when its q-value is at most ``fdr.level`` (with
+#: ``confirm: K``), an event is raised only when its effect is at least ``min_effect``;
+#: ``two_period`` - the evidence of this period and the previous one held to a level
+#: set from a yearly false-alarm budget, with hysteresis (see :mod:`monitor.decisions`).
+RULE_PER_PERIOD = "per_period"
+RULE_TWO_PERIOD = "two_period"
+RULES = (RULE_TWO_PERIOD, RULE_PER_PERIOD)
+#: The name histories written before the rule could be chosen give the per-period rule.
 RULE_Q_LEVEL = "q-at-most-level"
 
 #: How many of a metric's pairs are written in a bounded form (``run --json`` by default,
@@ -306,9 +312,10 @@ class SegmentRow:
     direction: str | None = None  # the pair verdict before the metric's significance gate (not stored)
     excluded: bool = False
     quantiles: tuple[float, ...] = ()  # at QUANTILE_LEVELS; () when no values were available
+    held: int = 0  # periods in a row the announced flag was kept without this period's evidence
 
     def to_json(self) -> dict[str, Any]:
-        return {
+        out = {
             "segment": self.segment,
             "n": self.n,
             "mean": _num(self.mean),
@@ -320,6 +327,9 @@ class SegmentRow:
             "excluded": self.excluded,
             "quantiles": dict(zip(QUANTILE_KEYS, map(_num, self.quantiles))) if self.quantiles else None,
         }
+        if self.held:
+            out["held"] = self.held
+        return out
 
     @classmethod
     def from_json(cls, data: Mapping[str, Any]) -> "SegmentRow":
@@ -327,7 +337,8 @@ class SegmentRow:
         quantiles = tuple(_nan(q.get(k)) for k in QUANTILE_KEYS) if q else ()
         return cls(data["segment"], int(data.get("n") or 0), _nan(data.get("mean")), _nan(data.get("sd")),
                    data.get("flag"), _nan(data.get("diff_vs_rest")), int(data.get("above") or 0),
-                   int(data.get("below") or 0), None, bool(data.get("excluded")), quantiles)
+                   int(data.get("below") or 0), None, bool(data.get("excluded")), quantiles,
+                   int(data.get("held") or 0))
 
 
 @dataclass(frozen=True)
@@ -489,6 +500,61 @@ class Adjustment:
 
 
 @dataclass(frozen=True)
+class Verdict:
+    """How a decision rule judged one test (a metric, or one assumption check of it) in
+    one period, and the announced state it left (see :mod:`monitor.decisions`).
+
+    Attributes
+    ----------
+    rule : str
+        One of :data:`RULES`.
+    evidence : float
+        What was held to ``level``: under ``two_period`` the combined evidence
+        ``p* = min(1, p_t / w, p_S / (1 - w))``; under ``per_period`` the q-value.
+        NaN when the test had no p-value this period.
+    level : float
+        The level ``evidence`` was held to.
+    reject : bool
+        ``evidence <= level`` and the effect large enough to matter.
+    on : bool
+        Announced as differing (for a check: as broken) after this period.
+    quiet : int
+        Consecutive quiet periods while announced (towards clearing).
+    change : str or None
+        ``'on'`` (announced this period), ``'off'`` (taken back) or None.
+    p_before : float or None
+        The previous period's p-value that entered the evidence (None: none did).
+    combined : float or None
+        Stouffer's combination of this and the previous period's p-values.
+    before : str or None
+        The previous period whose p-value was used.
+    """
+
+    rule: str
+    evidence: float
+    level: float
+    reject: bool
+    on: bool
+    quiet: int = 0
+    change: str | None = None
+    p_before: float | None = None
+    combined: float | None = None
+    before: str | None = None
+
+    def to_json(self) -> dict[str, Any]:
+        return {"rule": self.rule, "evidence": _num(self.evidence), "level": _num(self.level),
+                "reject": self.reject, "on": self.on, "quiet": self.quiet, "change": self.change,
+                "p_before": _num(self.p_before), "combined": _num(self.combined), "before": self.before}
+
+    @classmethod
+    def from_json(cls, data: Mapping[str, Any]) -> "Verdict":
+        return cls(str(data.get("rule") or RULE_TWO_PERIOD), _nan(data.get("evidence")), _nan(data.get("level")),
+                   bool(data.get("reject")), bool(data.get("on")), int(data.get("quiet") or 0),
+                   data.get("change"), _opt(data.get("p_before")), _opt(data.get("combined")),
+                   data.get("before"))
+
+
+@dataclass(frozen=True)
 class MetricResult:
     """The verdict for one metric in one period (the contract's ``metrics[]`` entry)."""
 
@@ -518,6 +584,8 @@ class MetricResult:
     pair_level: float = math.nan  # the level pairs and flags were read at
     adjustment: Adjustment | None = None  # adjust_for: the additive model and the raw comparison beside it
     pairs_left_out: int = 0  # pairs computed but not kept (a bounded entry read back)
+    decision: Verdict | None = None  # the decision rule's verdict on the metric (None: not judged yet)
+    check_decisions: Mapping[str, Verdict] = field(default_factory=dict)  # watched check -> verdict
 
     @property
     def computed(self) -> bool:
@@ -592,6 +660,10 @@ class MetricResult:
             out["sample_size"] = self.sample_size
         if self.adjustment is not None:
             out["adjustment"] = self.adjustment.to_json({p.a: p.significant for p in self.pairs})
+        if self.decision is not None:
+            out["decision"] = self.decision.to_json()
+        if self.check_decisions:
+            out["check_decisions"] = {k: v.to_json() for k, v in self.check_decisions.items()}
         if stored:
             out["format"] = FORMAT
             out["requested"] = self.requested
@@ -627,6 +699,8 @@ class MetricResult:
             pair_level=_nan(data.get("pair_level")),
             adjustment=Adjustment.from_json(data["adjustment"]) if data.get("adjustment") else None,
             pairs_left_out=int(data.get("pairs_left_out") or 0),
+            decision=Verdict.from_json(data["decision"]) if data.get("decision") else None,
+            check_decisions={k: Verdict.from_json(v) for k, v in (data.get("check_decisions") or {}).items()},
         )
 
 
@@ -704,6 +778,7 @@ class RunSettings:
     metrics: tuple[MetricSettings, ...]
     version: str  # segwatch's version that computed the run
     format: int = FORMAT
+    decision: Mapping[str, Any] = field(default_factory=dict)  # the decision rule's settings (config's decision:)
 
     def metric(self, name: str) -> MetricSettings | None:
         return next((m for m in self.metrics if m.name == name), None)
@@ -715,15 +790,15 @@ class RunSettings:
             from . import __version__ as version
         used = {r.metric: r.method for r in results}
         return cls(job.fdr.method, float(job.fdr.level), float(job.alpha), job.fdr.pairs, int(job.confirm),
-                   RULE_Q_LEVEL,
+                   job.decision.rule,
                    tuple(MetricSettings(m.name, m.test, used.get(m.name), m.min_effect, m.reference, m.transform)
                          for m in job.metrics),
-                   str(version))
+                   str(version), decision=job.decision.to_json())
 
     def to_json(self) -> dict[str, Any]:
         return {"format": self.format, "version": self.version, "fdr_method": self.fdr_method,
                 "fdr_level": self.fdr_level, "alpha": self.alpha, "pairs": self.pairs, "confirm": self.confirm,
-                "rule": self.rule, "metrics": [m.to_json() for m in self.metrics]}
+                "rule": self.rule, "decision": dict(self.decision), "metrics": [m.to_json() for m in self.metrics]}
 
     @classmethod
     def from_json(cls, data: Mapping[str, Any]) -> "RunSettings":
@@ -733,7 +808,7 @@ class RunSettings:
         return cls(str(data.get("fdr_method") or ""), _nan(data.get("fdr_level")), _nan(data.get("alpha")),
                    data.get("pairs") or "within", int(data.get("confirm") or 1), data.get("rule") or RULE_Q_LEVEL,
                    tuple(MetricSettings.from_json(m) for m in data.get("metrics") or ()),
-                   str(data.get("version") or ""), fmt)
+                   str(data.get("version") or ""), fmt, dict(data.get("decision") or {}))
 
 
 # ---------------------------------------------------------------- read back from the history
@@ -818,6 +893,11 @@ def _exp(x: float) -> float:
 def _nan(x: Any) -> float:
     """A stored number back as a float: NaN for ``null``."""
     return math.nan if x is None else float(x)
+
+
+def _opt(x: Any) -> float | None:
+    """A stored number back as a float, or None for ``null``."""
+    return None if x is None else float(x)
 
 
 def _exact(x: Any) -> Any:

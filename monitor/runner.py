@@ -33,6 +33,7 @@ from .analysis import analyse_period, load_statistics_in_background
 from .clock import Clock, SystemClock
 from .config import JobConfig, config_hash
 from .errors import LeaseLost, PeriodBusy, PeriodError, SegwatchError
+from .decisions import decide_period, previous_state
 from .events import Baseline, derive_events, lookback
 from .store.history import History, iso_utc
 from .store.ledger import LEASE_SECONDS, Claim, Ledger, LedgerEntry
@@ -214,8 +215,10 @@ class Job:
         if data.rows == 0:
             return PeriodReport(cfg.job, period, (), (), 0, 0, 0, (), nothing,
                                 "the source had no rows in this period; dry run: nothing stored, nothing sent")
-        results = analyse_period(data.metrics, cfg)
-        baseline = Baseline.from_history(self._stored_before(period), cfg)
+        stored = self._stored_before(period)
+        results = decide_period(analyse_period(data.metrics, cfg), cfg,
+                                previous_state(stored, period.previous().ident, cfg))
+        baseline = Baseline.from_history(stored, cfg)
         events = derive_events(cfg, results, data.segments, data.null_segment_rows, data.rows, baseline)
         return PeriodReport(cfg.job, period, results, tuple(events), 0, data.rows, data.null_segment_rows,
                             data.segments, nothing, "dry run: nothing stored, nothing sent")
@@ -247,8 +250,10 @@ class Job:
             note = "the source had no rows in this period; nothing was stored"
             log.info("job %s: %s skipped: %s", cfg.job, period.ident, note)
             return PeriodReport(cfg.job, period, (), (), 0, 0, 0, (), outcome, note)
-        results = analyse_period(data.metrics, cfg)
-        baseline = Baseline.from_history(self.history.recent(period, lookback(cfg.confirm)), cfg)
+        stored = self.history.recent(period, lookback(cfg.confirm))
+        results = decide_period(analyse_period(data.metrics, cfg), cfg,
+                                previous_state(stored, period.previous().ident, cfg))
+        baseline = Baseline.from_history(stored, cfg)
         events = derive_events(cfg, results, data.segments, data.null_segment_rows, data.rows, baseline)
         fresh = self.history.store_period(
             period, results, events, channel_kinds(self.sinks),

@@ -232,12 +232,12 @@ def test_objects_are_frozen_and_hashable(tmp_path):
         pytest.param(
             {"metric": ["x"]},
             "metric: unknown key; did you mean 'metrics'? (given: 'metric'; accepted: job, source, period, "
-            "timezone, metrics, fdr, history, alerts, schedule, quality, posthoc, alpha, compute, sampling, confirm, power, scheduling, report)",
+            "timezone, metrics, fdr, history, alerts, schedule, quality, posthoc, alpha, compute, sampling, confirm, power, scheduling, report, decision)",
             id="top-level-typo"),
         pytest.param(
             {"colour": "red"},
             "colour: unknown key (given: 'colour'; accepted: job, source, period, timezone, metrics, fdr, "
-            "history, alerts, schedule, quality, posthoc, alpha, compute, sampling, confirm, power, scheduling, report)",
+            "history, alerts, schedule, quality, posthoc, alpha, compute, sampling, confirm, power, scheduling, report, decision)",
             id="top-level-unknown"),
         pytest.param(
             {"source": source(tabel="x")},
@@ -979,7 +979,7 @@ def test_extension_keys_defaults_and_values(tmp_path):
     assert (cfg.sampling.mode, cfg.sampling.cap, cfg.sampling.seed) == ("auto", 5000, 0)
     assert (cfg.scheduling.settle_minutes, cfg.scheduling.lookback) == (0, 0)
     assert (cfg.report.periods, cfg.report.path, cfg.report.attach) == (12, None, False)
-    full = dict(base, compute="local", confirm=2, power=0.9, fdr={"pairs": "selective"},
+    full = dict(base, compute="local", confirm=2, decision={"rule": "per_period"}, power=0.9, fdr={"pairs": "selective"},
                 sampling={"mode": "sample", "cap": 200, "seed": 7},
                 scheduling={"settle_minutes": 90, "lookback": 2},
                 report={"periods": 8, "path": "out/{period}.html", "attach": True})

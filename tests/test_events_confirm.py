@@ -33,6 +33,7 @@ def make_job(tmp_path: Path, confirm: int = 1):
         "timezone": "UTC",
         "metrics": [{"column": "dwell"}, {"column": "cost", "min_effect": 0.05}],
         "confirm": confirm,
+        "decision": {"rule": "per_period"},  # the rule confirm: K belongs to
     }
     return parse_config(data, tmp_path / "t.yaml", environ={})
 

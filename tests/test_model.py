@@ -113,7 +113,7 @@ JOB = {
     "period": "week", "timezone": "UTC",
     "metrics": [{"column": "dwell", "test": "auto", "min_effect": 0.06},
                 {"column": "cost", "test": "anova", "reference": "A", "transform": "log"}],
-    "fdr": {"method": "by", "level": 0.01, "pairs": "selective"}, "alpha": 0.1, "confirm": 2,
+    "fdr": {"method": "by", "level": 0.01, "pairs": "selective"}, "alpha": 0.1, "confirm": 2, "decision": {"rule": "per_period"},
     "history": {"url": "sqlite:///h.sqlite"},
 }
 

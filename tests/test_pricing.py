@@ -720,6 +720,8 @@ def test_reference_gap_cleared_message(tmp_path, capsys):
     con.commit()
     con.close()
     cfg = _toy_job(tmp_path, db, "local")
+    # the per-period rule clears in the first quiet month (the two-period rule waits for a second one)
+    cfg.write_text(cfg.read_text(encoding="utf-8") + "decision: {rule: per_period}\n", encoding="utf-8")
     assert main(["run", str(cfg), "--period", "2026-01", "--json"]) == 0
     first = json.loads(capsys.readouterr().out)
     assert _flag(first, "income", "Plus") == "low"  # the setup works: a gap in January ...

@@ -1,0 +1,237 @@
+"""The decision rule of a job: when a metric "now differs", when an assumption check
+"now fails", and when either is taken back.
+
+:mod:`monitor.analysis` judges each period alone (p-values, q-values across the
+period's metrics, pairs and segment directions). This module turns those numbers,
+with what the history holds of the *immediately preceding* period, into the verdicts
+that events announce (``decision:`` in the config):
+
+``two_period`` (the default)
+    Per metric, this period's p-value ``p_t`` and the previous period's ``p_{t-1}``
+    give the evidence ``p* = min(1, p_t / w, p_S / (1 - w))`` with Stouffer's
+    combination ``p_S`` (:class:`monitor.stats.evidence.TwoPeriodRule`). ``p*`` is held
+    to the level ``B / (P m)`` for a budget of ``B`` false alarms a year
+    (``decision.false_alarms_per_year``), ``P`` periods a year and ``m`` metrics with a
+    p-value this period (:class:`monitor.stats.evidence.Budget`): Bonferroni's
+    inequality bounds the expected number of false alarms by ``B`` a year whatever the
+    other metrics do (unlike Benjamini-Hochberg, the level does not loosen when other
+    metrics truly differ). An announcement is taken back only after
+    ``decision.quiet_periods`` periods in a row whose two-period window has every
+    p-value above ``decision.clear_above`` (:class:`monitor.stats.evidence.Hysteresis`):
+    a standing difference whose p-value hovers near the level stays announced.
+    The watched assumption checks (their p-values: Brown-Forsythe, normality) follow
+    the same rule with their own budget (``decision.check_alarms_per_year``) over the
+    period's (metric, check) pairs.
+
+    Segment flags live inside an announced metric: a segment is flagged when this
+    period's pairs say so (at ``alpha``, within the metric's family); an announced flag
+    is kept while the metric stays announced, until ``quiet_periods`` periods in a row
+    without that direction (counted in :attr:`~monitor.model.SegmentRow.held`), or the
+    opposite direction.
+
+``per_period``
+    Each period alone: a metric differs when ``q <= fdr.level`` (with ``confirm: K``,
+    replayed from history in :mod:`monitor.events`), assumption events whenever a watched
+    check's verdict changes. This is the rule of releases before the choice existed.
+
+When the previous period is not in the history (it failed, had no rows, or was never
+computed), ``p_{t-1}`` is missing: the period is judged alone at the same level
+(``p* = p_t``, still a valid p-value) and the verdict says so (``before`` is None);
+the announced state is carried over from the latest stored period.
+
+References
+----------
+Stouffer, S. A. et al. (1949). The American Soldier, vol. 1. Princeton University Press.
+Whitlock, M. C. (2005). Combining probability from independent tests: the weighted
+Z-method is superior to Fisher's approach. J. Evol. Biol. 18, 1368-1373.
+See :mod:`monitor.stats.evidence` for the proof that the budget holds.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from dataclasses import replace
+from typing import Any, Mapping, Protocol, Sequence
+
+from .analysis import gate
+from .config import JobConfig, MetricConfig
+from .model import RULE_PER_PERIOD, RULE_TWO_PERIOD, MetricResult, SegmentRow, Verdict
+from .stats import evidence as ev
+
+log = logging.getLogger(__name__)
+
+__all__ = ["Previous", "decide_period", "important", "previous_state"]
+
+
+class StoredLike(Protocol):
+    """What the decision rule reads of the previous stored period
+    (:class:`monitor.store.history.StoredPeriod` has these fields)."""
+
+    period: str
+    segments: Sequence[str]
+    metrics: Mapping[str, Mapping[str, Any]]
+
+
+def important(result: MetricResult, metric: MetricConfig | None) -> bool:
+    """Whether the metric's effect reaches its practical threshold (``min_effect``, in
+    omega-squared units); True when none is set."""
+    if metric is None or metric.min_effect is None:
+        return True
+    eff = result.effect_size.value if result.effect_size is not None else math.nan
+    return eff is not None and math.isfinite(eff) and eff >= metric.min_effect
+
+
+class Previous:
+    """What the decision rule takes from the latest stored period before this one.
+
+    ``adjacent`` says whether that period is the immediately preceding one: only then
+    do its p-values enter this period's evidence; its announced states carry over
+    either way.
+    """
+
+    def __init__(self, stored: StoredLike | None, adjacent: bool, job: JobConfig) -> None:
+        self.period = stored.period if stored is not None else None
+        self.adjacent = bool(adjacent and stored is not None)
+        self._entries = dict(stored.metrics) if stored is not None else {}
+        self._segments = frozenset(stored.segments) if stored is not None else frozenset()
+        self._job = job
+
+    def entry(self, metric: str) -> Mapping[str, Any] | None:
+        return self._entries.get(metric)
+
+    def p_value(self, metric: str) -> float | None:
+        entry = self.entry(metric)
+        if not self.adjacent or not entry:
+            return None
+        return _p(entry.get("p_value"))
+
+    def state(self, metric: str) -> ev.State | None:
+        """The announced state of ``metric`` the previous period left."""
+        entry = self.entry(metric)
+        if not entry:
+            return None
+        d = entry.get("decision")
+        if d and d.get("rule") == RULE_TWO_PERIOD:
+            return ev.State(bool(d.get("on")), int(d.get("quiet") or 0))
+        # stored under the per-period rule (or before rules were stored): its verdict as the state
+        cfg = next((m for m in self._job.metrics if m.name == metric), None)
+        eff = (entry.get("effect_size") or {}).get("value")
+        ok = cfg is None or cfg.min_effect is None or (eff is not None and eff >= cfg.min_effect)
+        return ev.State(bool(entry.get("significant")) and ok, 0)
+
+    def check_p(self, metric: str, check: str) -> float | None:
+        entry = self.entry(metric)
+        if not self.adjacent or not entry:
+            return None
+        return _p(((entry.get("assumptions") or {}).get(check) or {}).get("value"))
+
+    def check_state(self, metric: str, check: str) -> ev.State | None:
+        entry = self.entry(metric)
+        if not entry:
+            return None
+        d = (entry.get("check_decisions") or {}).get(check)
+        if d and d.get("rule") == RULE_TWO_PERIOD:
+            return ev.State(bool(d.get("on")), int(d.get("quiet") or 0))
+        stored = (entry.get("assumptions") or {}).get(check) or {}
+        return ev.State(stored.get("passed") is False and bool(stored.get("watched", True)), 0)
+
+    def flags(self, metric: str) -> dict[str, tuple[str, int]]:
+        """Announced segment flags of ``metric``: segment -> (flag, periods held without evidence)."""
+        entry = self.entry(metric)
+        if not entry:
+            return {}
+        return {s["segment"]: (s["flag"], int(s.get("held") or 0)) for s in entry.get("segments") or ()
+                if s.get("flag")}
+
+
+def previous_state(stored: Sequence[StoredLike], period_before: str, job: JobConfig) -> Previous:
+    """:class:`Previous` from stored periods newest first (``History.recent``), where
+    ``period_before`` names the period immediately preceding the one being judged."""
+    newest = stored[0] if stored else None
+    return Previous(newest, newest is not None and newest.period == period_before, job)
+
+
+def decide_period(results: Sequence[MetricResult], job: JobConfig, previous: Previous) -> tuple[MetricResult, ...]:
+    """The period's verdicts under ``job.decision`` (see the module notes).
+
+    Under ``per_period`` every metric gets a :class:`~monitor.model.Verdict` that
+    records ``q <= fdr.level``; significance and flags are those of
+    :func:`monitor.analysis.finalise`. Under ``two_period`` ``significant`` becomes the
+    announced state, the flags and pairs are gated by it, and each metric carries the
+    verdicts of its watched checks.
+    """
+    d = job.decision
+    if d.rule == RULE_PER_PERIOD:
+        return tuple(replace(r, decision=Verdict(RULE_PER_PERIOD, r.q_value, job.fdr.level, r.significant,
+                                                  r.significant)) for r in results)
+    rule = ev.TwoPeriodRule(weight_now=d.weight_now)
+    hysteresis = ev.Hysteresis(clear_above=d.clear_above, quiet_periods=d.quiet_periods)
+    cfg = {m.name: m for m in job.metrics}
+    before = previous.period if previous.adjacent else None
+
+    tracks = {r.metric: ev.Track(_p(r.p_value), previous.p_value(r.metric), previous.state(r.metric),
+                                 important(r, cfg.get(r.metric))) for r in results}
+    metric_decisions = ev.decide(rule, hysteresis, ev.Budget(d.false_alarms_per_year, job.period), tracks)
+
+    check_tracks = {}
+    for r in results:
+        for name in r.relevant_checks:
+            chk = r.assumptions.get(name)
+            check_tracks[(r.metric, name)] = ev.Track(
+                _p(chk.value) if chk is not None and chk.passed is not None else None,
+                previous.check_p(r.metric, name), previous.check_state(r.metric, name))
+    check_decisions = ev.decide(rule, hysteresis, ev.Budget(d.check_alarms_per_year, job.period), check_tracks)
+
+    on_count = sum(1 for x in metric_decisions.decisions.values() if x.state.on)
+    computed = sum(1 for r in results if r.computed)
+    pair_level = job.alpha * on_count / computed if job.fdr.pairs == "selective" and computed else job.alpha
+    out = []
+    for r in results:
+        dec = metric_decisions.decisions[r.metric]
+        verdict = _verdict(dec, before)
+        checks = {name: _verdict(check_decisions.decisions[(r.metric, name)], before)
+                  for name in r.relevant_checks}
+        on = dec.state.on
+        gated = gate(r, on, pair_level, job)
+        segments = _held_flags(gated.segments, r, previous.flags(r.metric), on, hysteresis.quiet_periods)
+        out.append(replace(gated, segments=segments, decision=verdict, check_decisions=checks))
+    return tuple(out)
+
+
+def _held_flags(rows: Sequence[SegmentRow], r: MetricResult, before: Mapping[str, tuple[str, int]], on: bool,
+                quiet_periods: int) -> tuple[SegmentRow, ...]:
+    """Segment flags with hysteresis: an announced flag is kept while the metric stays
+    announced and the segment has records, until ``quiet_periods`` periods in a row
+    without that direction (or the opposite direction)."""
+    if not on:
+        return tuple(rows)
+    out = []
+    for s in rows:
+        held = before.get(s.segment)
+        if s.flag or held is None or s.excluded or s.n == 0 or not r.computed:
+            out.append(s)
+            continue
+        flag, count = held
+        if count + 1 >= quiet_periods:
+            out.append(s)
+        else:
+            out.append(replace(s, flag=flag, held=count + 1))
+    return tuple(out)
+
+
+def _verdict(dec: ev.Decision, before: str | None) -> Verdict:
+    e = dec.evidence
+    return Verdict(RULE_TWO_PERIOD, e.p_star, dec.level, dec.reject, dec.state.on, dec.state.quiet, dec.change,
+                   e.p_before, e.p_combined if math.isfinite(e.p_combined) else None,
+                   before if e.p_before is not None else None)
+
+
+def _p(x: Any) -> float | None:
+    if x is None:
+        return None
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return None
+    return min(1.0, max(0.0, v)) if math.isfinite(v) else None
