@@ -24,7 +24,7 @@ Decision rules, written down once
   significant metric (a gate that keeps the per-metric false discovery control
   meaningful), at level ``alpha`` with their own within-metric adjustment.
 * A segment is flagged ``high``/``low`` when, in the post-hoc pairs, it is
-  significantly above (below) at least half of the other segments and below
+  significantly above (below) more than half of the other segments and below
   (above) none (:func:`monitor.stats.flags.majority_of_pairs`). With a
   ``reference`` segment, the pairs are the method's many-to-one family (Dunnett
   after ANOVA) and a segment is flagged when its gap to the reference is significant.

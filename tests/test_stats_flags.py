@@ -282,12 +282,42 @@ class TestMajorityOfPairs:
         assert flagged / reps <= 0.05 + 3 * 0.0178
 
     def test_conflicting_directions_are_not_flagged(self):
-        pairs = [("a", "b", 2.0, 0.001), ("a", "c", -2.0, 0.001)]
+        pairs = [("a", "b", 2.0, 0.001), ("a", "c", -2.0, 0.001), ("b", "c", -4.0, 0.001)]
         v = {x.segment: x for x in majority_of_pairs(["a", "b", "c"], pairs, 0.05)}
         assert v["a"].direction is None and (v["a"].above, v["a"].below) == (1, 1)
         assert v["b"].direction == "low" and v["c"].direction == "high"
+        # below one of two others is not a majority: without the b-c pair, b is not flagged
+        v = {x.segment: x for x in majority_of_pairs(["a", "b", "c"], pairs[:2], 0.05)}
+        assert v["b"].direction is None and v["c"].direction is None
 
     def test_nan_pairs_count_as_not_significant(self):
         pairs = [("a", "b", float("nan"), float("nan"))]
         v = majority_of_pairs(["a", "b"], pairs, 0.05)
         assert [x.direction for x in v] == [None, None]
+
+
+def test_one_segment_far_above_invents_no_low_flags_among_three():
+    # A far above B and C, which are equal: only A stands apart. With the earlier "at least half"
+    # rule, B and C (each below A, 1 of their 2 others) were both flagged low.
+    from monitor.stats.flags import majority_of_pairs
+
+    verdicts = majority_of_pairs(["A", "B", "C"], [("A", "B", 3.0, 1e-10), ("A", "C", 3.0, 1e-10),
+                                                   ("B", "C", 0.01, 0.9)])
+    assert [v.direction for v in verdicts] == ["high", None, None]
+
+
+def test_the_contrast_with_the_rest_invents_no_flags_either():
+    # too many segments for pairs: each method flags against the rest step by step
+    # (monitor/stats/stepdown.py); one segment far above must not make the others low
+    from monitor import methods
+    from monitor.methods import Segments
+    from monitor.stats.summary import Moments
+
+    rng = np.random.default_rng(11)
+    values = [rng.normal(10.0, 1.0, 400) for _ in range(6)]
+    values[0] = values[0] + 3.0
+    segs = Segments.of([f"S{i}" for i in range(6)], [Moments.from_values(v) for v in values], values)
+    for name in ("anova", "welch", "kruskal"):
+        found = {c.segment: c.direction for c in methods.get(name).versus_rest(segs, alpha=0.05)}
+        assert found["S0"] == "high", name
+        assert [found[f"S{i}"] for i in range(1, 6)] == [None] * 5, (name, found)

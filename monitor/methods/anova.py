@@ -62,7 +62,7 @@ class FisherAnova(TestMethod):
                                          confidence=confidence, adjust=adjust)
 
     def versus_rest(self, segs: Segments, *, alpha: float) -> tuple[SegmentContrast, ...]:
-        return stats.flags.segment_vs_rest(segs.labels, segs.groups, None, method=self.name, alpha=alpha)
+        return stats.stepdown.stepdown_vs_rest(segs.labels, segs.groups, None, self.name, alpha=alpha)
 
     def watched_checks(self, groups: Sequence[Moments]) -> tuple[str, ...]:
         """Equal spreads (Brown-Forsythe) always; normality when some segment is small."""

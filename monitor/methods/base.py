@@ -184,8 +184,10 @@ class TestMethod(ABC):
 
     @abstractmethod
     def versus_rest(self, segs: Segments, *, alpha: float) -> tuple[SegmentContrast, ...]:
-        """Each segment against the pooled rest, flagged at ``alpha`` (used when there
-        are too many segments for pairs)."""
+        """Each segment against the pooled rest of the unflagged ones, step by step
+        (:func:`monitor.stats.stepdown.stepdown_vs_rest`: no segment's shift can invent
+        a flag on another), flagged at ``alpha``; used when there are too many segments
+        for pairs."""
 
     @abstractmethod
     def watched_checks(self, groups: Sequence[Moments]) -> tuple[str, ...]:

@@ -63,8 +63,7 @@ class KruskalWallis(TestMethod):
                                          confidence=confidence, adjust=adjust)
 
     def versus_rest(self, segs: Segments, *, alpha: float) -> tuple[SegmentContrast, ...]:
-        return stats.flags.segment_vs_rest(segs.labels, segs.groups, _values(segs), method=self.name,
-                                           alpha=alpha)
+        return stats.stepdown.stepdown_vs_rest(segs.labels, segs.groups, _values(segs), self.name, alpha=alpha)
 
     def watched_checks(self, groups: Sequence[Moments]) -> tuple[str, ...]:
         """None: asked for by name, a rank test assumes neither normality nor equal spreads."""

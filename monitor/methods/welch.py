@@ -101,7 +101,7 @@ class WelchAnova(TestMethod):
                                          confidence=confidence, adjust=adjust)
 
     def versus_rest(self, segs: Segments, *, alpha: float) -> tuple[SegmentContrast, ...]:
-        return stats.flags.segment_vs_rest(segs.labels, segs.groups, None, method=self.name, alpha=alpha)
+        return stats.stepdown.stepdown_vs_rest(segs.labels, segs.groups, None, self.name, alpha=alpha)
 
     def unusable(self, segs: Segments) -> str | None:
         """Why not, below :func:`size_floor` records in some segment (see the module notes)."""

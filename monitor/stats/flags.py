@@ -394,7 +394,7 @@ class PairVerdict:
     others : int
         Number of other segments it was compared with.
     direction : {'high', 'low'} or None
-        ``'high'`` when it is significantly above at least half of the others
+        ``'high'`` when it is significantly above more than half of the others
         and below none; ``'low'`` for the mirror case; otherwise None.
     """
 
@@ -426,9 +426,13 @@ def majority_of_pairs(
 
     Notes
     -----
-    A segment is flagged ``'high'`` when it is significantly above at least
-    ``ceil((k - 1) / 2)`` of the other ``k - 1`` segments and significantly
-    below none (``'low'`` mirrored). Every flag therefore rests on pairwise
+    A segment is flagged ``'high'`` when it is significantly above more than
+    half of the other ``k - 1`` segments (``floor((k - 1) / 2) + 1`` of them) and
+    significantly below none (``'low'`` mirrored). A strict majority: when ``h``
+    segments move up and the others stay, an unmoved segment is below ``h`` of
+    its ``k - 1`` others, so it can be flagged ``low`` only if more than half of
+    the segments moved (with "at least half", three segments of which one moved
+    gave two invented ``low`` flags). Every flag therefore rests on pairwise
     decisions of a family whose familywise error rate the post-hoc method
     already controls at ``alpha`` [1]_ [2]_, so under the complete null the
     chance of flagging any segment is at most ``alpha``; and since it asks for a
@@ -459,7 +463,7 @@ def majority_of_pairs(
         if lo in below:
             below[lo] += 1
     k = len(labels)
-    need = max(1, -(-(k - 1) // 2))
+    need = max(1, (k - 1) // 2 + 1)
     out = []
     for s in labels:
         direction = None

@@ -1,0 +1,253 @@
+"""The decision rule across periods (monitor/decisions.py) and the events it announces.
+
+Outside references: Stouffer's combination is checked against
+``scipy.stats.combine_pvalues(method='stouffer')``; the level against the budget's
+formula B / (P m) with P = 365.2425 / 7 ISO weeks a year (the mean Gregorian year).
+Each rule has a test that fails on the per-period rule of earlier releases
+(``decision: {rule: per_period}``), which the same tests show.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy import stats as sps
+
+from monitor.config import parse_config
+from monitor.decisions import Previous, decide_period, previous_state
+from monitor.events import Baseline, derive_events
+from monitor.model import Check, EffectSize, MetricResult, QualityCounts, SegmentRow
+
+SEGS = ("A", "B", "C", "D", "E")
+WEEKS_A_YEAR = 365.2425 / 7
+
+
+def make_job(tmp_path: Path, rule: str | None = None, metrics=("m1", "m2", "m3", "m4", "m5"), **decision):
+    data = {
+        "job": "t",
+        "source": {"url": "sqlite:///x.sqlite", "table": "t", "time_column": "ts", "segment_column": "depot"},
+        "period": "week", "timezone": "UTC",
+        "metrics": list(metrics),
+    }
+    if rule or decision:
+        data["decision"] = ({"rule": rule} if rule else {}) | decision
+    return parse_config(data, tmp_path / "t.yaml", environ={})
+
+
+def result(metric: str, p: float, *, flags: dict[str, str] | None = None, bf: float | None = None) -> MetricResult:
+    """One metric's per-period analysis as monitor.analysis.finalise leaves it (q = p here)."""
+    flags = flags or {}
+    rows = tuple(SegmentRow(s, 50, 10.0, 1.0, direction=flags.get(s), flag=flags.get(s) if p <= 0.05 else None)
+                 for s in SEGS)
+    checks = {}
+    relevant = ()
+    if bf is not None:
+        checks = {"brown_forsythe": Check("brown_forsythe", bf, 0.05, bf >= 0.05, f"Brown-Forsythe p {bf}")}
+        relevant = ("brown_forsythe",)
+    return MetricResult(metric, metric, "auto", "welch", "", 3.0, (4.0, 100.0), p,
+                        EffectSize("omega_squared", 0.05), rows, (), "games-howell", checks,
+                        QualityCounts(250), q_value=p, significant=p <= 0.05, relevant_checks=relevant)
+
+
+@dataclass
+class Stored:
+    """A stored period as History.recent gives it."""
+
+    period: str
+    metrics: dict
+    segments: tuple = SEGS
+
+
+class Weeks:
+    """Runs a job's decisions and events week after week over an in-memory history."""
+
+    def __init__(self, job):
+        self.job = job
+        self.history: list[Stored] = []
+        self.events: list[tuple[str, object]] = []
+
+    def week(self, ident: str, results, previous_ident: str | None = None) -> tuple[MetricResult, ...]:
+        stored = list(reversed(self.history))
+        before = previous_ident or (self.history[-1].period if self.history else "none")
+        decided = decide_period(results, self.job, previous_state(stored, before, self.job))
+        base = Baseline.from_history(stored, self.job)
+        self.events += [(ident, e) for e in derive_events(self.job, decided, SEGS, 0, 250, base)]
+        self.history.append(Stored(ident, {r.metric: r.to_json(stored=True) for r in decided}))
+        return decided
+
+    def kinds(self, metric: str | None = None, segment: str | None = "any") -> list[tuple[str, str]]:
+        return [(w, e.kind) for w, e in self.events if (metric is None or e.metric == metric)
+                and (segment == "any" or e.segment == segment)]
+
+
+def quiet(*names: str, p: float = 0.6):
+    return [result(n, p) for n in names]
+
+
+NAMES = ("m1", "m2", "m3", "m4", "m5")
+
+
+# ---------------------------------------------------------------- the level and the evidence
+
+
+def test_level_follows_the_yearly_budget(tmp_path):
+    job = make_job(tmp_path)
+    decided = decide_period([result(n, 0.5) for n in NAMES], job, Previous(None, False, job))
+    assert decided[0].decision.level == pytest.approx(1.0 / (WEEKS_A_YEAR * 5), rel=1e-12)
+    job2 = make_job(tmp_path, false_alarms_per_year=0.5)
+    decided = decide_period([result(n, 0.5) for n in NAMES[:2]], job2, Previous(None, False, job2))
+    assert decided[0].decision.level == pytest.approx(0.5 / (WEEKS_A_YEAR * 2), rel=1e-12)
+
+
+def test_evidence_is_stouffers_combination_against_scipy(tmp_path):
+    job = make_job(tmp_path)
+    w = Weeks(job)
+    w.week("2026-W01", [result(n, p) for n, p in zip(NAMES, (0.01, 0.2, 0.5, 0.7, 0.9))])
+    second = w.week("2026-W02", [result(n, p) for n, p in zip(NAMES, (0.02, 0.03, 0.5, 0.7, 0.9))])
+    for r, before in zip(second, (0.01, 0.2, 0.5, 0.7, 0.9)):
+        ref = sps.combine_pvalues([r.p_value, before], method="stouffer").pvalue  # scipy, unweighted z-sum
+        assert r.decision.combined == pytest.approx(ref, rel=1e-9)
+        assert r.decision.evidence == pytest.approx(min(1.0, r.p_value / 0.2, ref / 0.8), rel=1e-9)
+        assert r.decision.before == "2026-W01" and r.decision.p_before == before
+
+
+def test_two_moderate_periods_alarm_where_one_alone_would_not(tmp_path):
+    # p = 0.01 twice: each alone is far above the level (0.0038 for 5 weekly metrics), together
+    # Stouffer's p_S = 5.0e-4 <= 0.8 x level. The per-period rule at BH 0.05 alarms in the first week instead.
+    job = make_job(tmp_path)
+    w = Weeks(job)
+    w.week("2026-W01", [result("m1", 0.01)] + quiet(*NAMES[1:]))
+    assert w.kinds("m1", None) == []
+    w.week("2026-W02", [result("m1", 0.01)] + quiet(*NAMES[1:]))
+    assert w.kinds("m1", None) == [("2026-W02", "emerged")]
+    (event,) = [e for _, e in w.events]
+    assert "over this period and 2026-W01" in event.message
+    assert event.detail["evidence"] <= event.detail["level"] and event.detail["before"] == "2026-W01"
+
+    old = Weeks(make_job(tmp_path, "per_period"))
+    old.week("2026-W01", [result("m1", 0.01)] + quiet(*NAMES[1:]))
+    assert old.kinds("m1", None) == [("2026-W01", "emerged")]
+
+
+def test_a_one_period_blip_raises_nothing_and_cannot_flap(tmp_path):
+    # p = 0.004 once among quiet weeks: an alarm under the per-period rule, cleared the week after (flapping)
+    new, old = Weeks(make_job(tmp_path)), Weeks(make_job(tmp_path, "per_period"))
+    for i, p in enumerate((0.6, 0.004, 0.6, 0.5, 0.7), start=1):
+        for w in (new, old):
+            w.week(f"2026-W0{i}", [result("m1", p)] + quiet(*NAMES[1:]))
+    assert new.kinds() == []
+    assert old.kinds("m1", None) == [("2026-W02", "emerged"), ("2026-W03", "cleared")]
+
+
+def test_a_standing_difference_does_not_clear_when_one_period_falls_short(tmp_path):
+    # a difference that stands every week; in W03 its test falls just short (p = 0.08)
+    ps = (1e-6, 1e-5, 0.08, 1e-5, 1e-6)
+    new, old = Weeks(make_job(tmp_path)), Weeks(make_job(tmp_path, "per_period"))
+    for i, p in enumerate(ps, start=1):
+        for w in (new, old):
+            w.week(f"2026-W0{i}", [result("m1", p, flags={"A": "high"})] + quiet(*NAMES[1:]))
+    assert new.kinds("m1") == [("2026-W01", "emerged"), ("2026-W01", "emerged")]  # the metric, then A
+    assert [e.segment for _, e in new.events] == [None, "A"]
+    assert ("2026-W03", "cleared") in old.kinds("m1")  # the per-period rule flickers
+    assert ("2026-W04", "emerged") in old.kinds("m1")
+
+
+def test_an_announcement_clears_after_two_quiet_periods(tmp_path):
+    job = make_job(tmp_path)
+    w = Weeks(job)
+    ps = (1e-8, 1e-7, 0.5, 0.6, 0.7, 0.8)
+    for i, p in enumerate(ps, start=1):
+        w.week(f"2026-W0{i}", [result("m1", p, flags={"A": "high"})] + quiet(*NAMES[1:]))
+    # W03's window reaches back to W02 (strong evidence), so it is not quiet; W04 and W05 are
+    assert w.kinds("m1", None) == [("2026-W01", "emerged"), ("2026-W05", "cleared")]
+    (cleared,) = [e for wk, e in w.events if e.kind == "cleared" and e.segment is None]
+    assert "no evidence in 2 periods in a row" in cleared.message
+    assert ("2026-W05", "cleared") in w.kinds("m1", "A")
+
+
+def test_a_segment_flag_is_held_one_period_without_evidence(tmp_path):
+    job = make_job(tmp_path)
+    w = Weeks(job)
+    flags = ({"A": "high"}, {"A": "high"}, {}, {"A": "high"}, {}, {}, {})
+    for i, f in enumerate(flags, start=1):
+        decided = w.week(f"2026-W0{i}", [result("m1", 1e-9, flags=f)] + quiet(*NAMES[1:]))
+        if i == 3:
+            assert decided[0].flagged == {"A": "high"} and decided[0].segments[0].held == 1
+    assert w.kinds("m1", "A") == [("2026-W01", "emerged"), ("2026-W06", "cleared")]
+
+
+def test_a_missing_previous_period_is_judged_alone_and_said(tmp_path):
+    job = make_job(tmp_path)
+    w = Weeks(job)
+    w.week("2026-W01", [result("m1", 0.01)] + quiet(*NAMES[1:]))
+    # W02 failed and was never stored: W03 must not combine with W01
+    decided = w.week("2026-W03", [result("m1", 0.01)] + quiet(*NAMES[1:]), previous_ident="2026-W02")
+    assert decided[0].decision.before is None and decided[0].decision.p_before is None
+    assert decided[0].decision.evidence == pytest.approx(0.01)
+    assert w.kinds() == []
+
+
+def test_the_level_does_not_loosen_when_other_metrics_truly_differ(tmp_path):
+    # four metrics differ strongly every week; under BH a fifth at p = 0.03 is rejected (q = 0.03),
+    # under the budget's Bonferroni level it is not
+    new, old = Weeks(make_job(tmp_path)), Weeks(make_job(tmp_path, "per_period"))
+    for w in (new, old):
+        w.week("2026-W01", [result(n, 1e-9) for n in NAMES[:4]] + [result("m5", 0.6)])
+    for w in (new, old):
+        w.week("2026-W02", [result(n, 1e-9) for n in NAMES[:4]] + [result("m5", 0.03)])
+    assert ("2026-W02", "emerged") in old.kinds("m5", None)
+    assert new.kinds("m5", None) == []
+
+
+# ---------------------------------------------------------------- assumption checks
+
+
+def test_assumption_breaks_need_the_evidence_of_the_budget(tmp_path):
+    # Brown-Forsythe p = 0.03 in one week: a break at the check's 0.05 under the per-period rule
+    new, old = Weeks(make_job(tmp_path)), Weeks(make_job(tmp_path, "per_period"))
+    for i, bf in enumerate((0.5, 0.03, 0.6, 0.7), start=1):
+        for w in (new, old):
+            w.week(f"2026-W0{i}", [result("m1", 0.6, bf=bf)] + quiet(*NAMES[1:]))
+    assert old.kinds("m1", None) == [("2026-W02", "assumption_broken"), ("2026-W03", "assumption_restored")]
+    assert new.kinds() == []
+
+
+def test_a_lasting_spread_change_is_announced_and_restored_with_hysteresis(tmp_path):
+    job = make_job(tmp_path)
+    w = Weeks(job)
+    for i, bf in enumerate((0.5, 1e-9, 1e-6, 0.04, 1e-5, 0.5, 0.6, 0.7), start=1):
+        w.week(f"2026-W0{i}", [result("m1", 0.6, bf=bf)] + quiet(*NAMES[1:]))
+    assert w.kinds("m1", None) == [("2026-W02", "assumption_broken"), ("2026-W08", "assumption_restored")]
+    broken = next(e for _, e in w.events if e.kind == "assumption_broken")
+    assert broken.detail["check"] == "brown_forsythe" and broken.detail["evidence"] <= broken.detail["level"]
+    assert broken.detail["level"] == pytest.approx(1.0 / WEEKS_A_YEAR, rel=1e-12)  # one watched check
+
+
+# ---------------------------------------------------------------- config
+
+
+def test_confirm_belongs_to_the_per_period_rule(tmp_path):
+    from monitor.errors import ConfigError
+
+    with pytest.raises(ConfigError, match=r"confirm: applies only to decision.rule: per_period"):
+        parse_config({"source": {"url": "sqlite:///x.sqlite", "table": "t", "time_column": "ts",
+                                 "segment_column": "g"}, "period": "week", "timezone": "UTC",
+                      "metrics": ["y"], "confirm": 2}, tmp_path / "j.yaml", environ={})
+
+
+@pytest.mark.parametrize("decision, message", [
+    ({"rule": "weekly"}, "decision.rule: "),
+    ({"false_alarms_per_year": 0}, "decision.false_alarms_per_year: "),
+    ({"weight_now": 1}, "decision.weight_now: "),
+    ({"quiet_periods": 0}, "decision.quiet_periods: "),
+    ({"budget": 1}, "decision.budget: unknown key"),
+])
+def test_bad_decision_settings_name_the_key(tmp_path, decision, message):
+    from monitor.errors import ConfigError
+
+    with pytest.raises(ConfigError, match=message.replace(".", r"\.")):
+        make_job(tmp_path, **decision)
