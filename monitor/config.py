@@ -128,6 +128,8 @@ class MetricConfig:
     min_effect: float | None = None
     label: str | None = None
     adjust_for: tuple[str, ...] = ()  # categorical columns the segments are compared within
+    min_difference: float | None = None  # a practical threshold: in the metric's units, or a percentage
+    min_difference_percent: bool = False  # min_difference is a percentage (``"5%"``)
 
 
 @dataclass(frozen=True)
@@ -289,6 +291,7 @@ def config_hash(cfg: JobConfig) -> str:
         "metrics": sorted(
             [m.name, m.column, m.test, m.reference, m.transform, m.min_effect]
             + ([list(m.adjust_for)] if m.adjust_for else [])  # hashes of jobs without adjust_for unchanged
+            + ([m.min_difference, m.min_difference_percent] if m.min_difference is not None else [])
             for m in cfg.metrics
         ),
         "fdr": [cfg.fdr.method, cfg.fdr.level, cfg.fdr.pairs],
@@ -419,7 +422,7 @@ _SOURCE_KEYS = ("url", "table", "query", "file", "time_column", "segment_column"
 FILE_READERS = {".csv": "read_csv_auto", ".tsv": "read_csv_auto", ".csv.gz": "read_csv_auto",
                 ".tsv.gz": "read_csv_auto", ".parquet": "read_parquet"}
 _METRIC_KEYS = ("column", "name", "test", "reference", "transform", "unit", "decimals", "min_effect", "label",
-                "adjust_for")
+                "adjust_for", "min_difference")
 
 _MISSING: Any = type("_Missing", (), {"__repr__": lambda self: "nothing"})()
 _REQUIRED: Any = type("_Required", (), {})()
@@ -667,6 +670,7 @@ def _metrics(r: _Reader, top: dict, source: SourceConfig) -> tuple[MetricConfig,
                                 default=None),
             label=r.text(spec, "label", path, "a display label", default=None),
             adjust_for=_adjust_for(r, spec, path, column, source),
+            **_min_difference(r, spec, path),
         ))
         chosen = metrics[-1]
         if chosen.test != methods.AUTO and chosen.transform != "none" and not methods.get(chosen.test).transforms:
@@ -683,6 +687,34 @@ def _metrics(r: _Reader, top: dict, source: SourceConfig) -> tuple[MetricConfig,
                        f"{methods.get(test).label})",
                        test, f"{', '.join(ok)} or {methods.AUTO} with adjust_for")
     return tuple(metrics)
+
+
+def _min_difference(r: _Reader, spec: dict, path: str) -> dict[str, Any]:
+    """``metrics[i].min_difference``: a number in the metric's units (``2`` for 2 h) or a
+    percentage as text (``"5%"``); under ``transform: log`` only a percentage (a gap there
+    is a ratio)."""
+    value = spec.get("min_difference")
+    if value is None:
+        return {}
+    where = f"{path}.min_difference"
+    accepted = "a positive number in the metric's units (e.g. 2) or a percentage in quotes (e.g. \"5%\")"
+    percent = isinstance(value, str)
+    if percent:
+        text = value.strip()
+        match = re.fullmatch(r"(\d+(?:\.\d*)?|\.\d+)\s*%", text)
+        if not match:
+            r.fail(where, "is not a number or a percentage", value, accepted)
+        number = float(match.group(1))
+    elif isinstance(value, bool) or not isinstance(value, (int, float)):
+        r.fail(where, f"must be a number or a percentage, not {_describe(value)}", value, accepted)
+    else:
+        number = float(value)
+    if not (math.isfinite(number) and number > 0) or (percent and number >= 1000):
+        r.fail(where, "is out of range", value, accepted)
+    if not percent and spec.get("transform") in ("log", "log1p"):
+        r.fail(where, "must be a percentage under transform: log (gaps are ratios there)", value,
+               'a percentage in quotes, e.g. "5%"')
+    return {"min_difference": number, "min_difference_percent": percent}
 
 
 def _adjust_for(r: _Reader, spec: dict, path: str, column: str, source: SourceConfig) -> tuple[str, ...]:

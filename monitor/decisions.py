@@ -61,7 +61,7 @@ from .stats import evidence as ev
 
 log = logging.getLogger(__name__)
 
-__all__ = ["Previous", "decide_period", "important", "previous_state"]
+__all__ = ["Previous", "decide_period", "important", "large_enough", "previous_state", "segment_gap"]
 
 
 class StoredLike(Protocol):
@@ -73,13 +73,53 @@ class StoredLike(Protocol):
     metrics: Mapping[str, Mapping[str, Any]]
 
 
-def important(result: MetricResult, metric: MetricConfig | None) -> bool:
-    """Whether the metric's effect reaches its practical threshold (``min_effect``, in
-    omega-squared units); True when none is set."""
-    if metric is None or metric.min_effect is None:
+def segment_gap(result: MetricResult, segment: str, metric: MetricConfig | None) -> float:
+    """The practical size of one segment's difference: against the reference segment
+    in a reference job, else against the mean of the other segments' records; in the
+    metric's units, or as a percentage when ``min_difference`` is one (under ``log``
+    the percentage of the ratio of geometric means). NaN when it cannot be measured."""
+    rows = {s.segment: s for s in result.segments}
+    row = rows.get(segment)
+    if row is None or not math.isfinite(row.mean):
+        return math.nan
+    if result.reference is not None:
+        ref = rows.get(result.reference)
+        if ref is None or segment == result.reference or not math.isfinite(ref.mean):
+            return math.nan
+        gap, base = row.mean - ref.mean, ref.mean
+    else:
+        gap, base = row.diff_vs_rest, row.mean - row.diff_vs_rest
+    if not math.isfinite(gap):
+        return math.nan
+    if metric is None or not metric.min_difference_percent:
+        return abs(gap)
+    if metric.transform == "log":
+        return 100.0 * abs(math.exp(gap) - 1.0)
+    return 100.0 * abs(gap) / abs(base) if base else math.nan
+
+
+def large_enough(result: MetricResult, segment: str, metric: MetricConfig | None) -> bool:
+    """Whether one segment's difference reaches the metric's ``min_difference`` (True when none is set)."""
+    if metric is None or metric.min_difference is None:
         return True
-    eff = result.effect_size.value if result.effect_size is not None else math.nan
-    return eff is not None and math.isfinite(eff) and eff >= metric.min_effect
+    size = segment_gap(result, segment, metric)
+    return math.isfinite(size) and size >= metric.min_difference
+
+
+def important(result: MetricResult, metric: MetricConfig | None) -> bool:
+    """Whether the metric's difference reaches its practical thresholds: ``min_effect``
+    (omega-squared units) and ``min_difference`` (some segment's difference, see
+    :func:`segment_gap`); True when neither is set."""
+    if metric is None:
+        return True
+    if metric.min_effect is not None:
+        eff = result.effect_size.value if result.effect_size is not None else math.nan
+        if not (eff is not None and math.isfinite(eff) and eff >= metric.min_effect):
+            return False
+    if metric.min_difference is not None:
+        return any(large_enough(result, s.segment, metric) for s in result.segments
+                   if not s.excluded and s.segment != result.reference)
+    return True
 
 
 class Previous:
@@ -162,12 +202,13 @@ def decide_period(results: Sequence[MetricResult], job: JobConfig, previous: Pre
     verdicts of its watched checks.
     """
     d = job.decision
+    cfg = {m.name: m for m in job.metrics}
     if d.rule == RULE_PER_PERIOD:
-        return tuple(replace(r, decision=Verdict(RULE_PER_PERIOD, r.q_value, job.fdr.level, r.significant,
-                                                  r.significant)) for r in results)
+        return tuple(replace(r, segments=_sized(r, cfg.get(r.metric)),
+                             decision=Verdict(RULE_PER_PERIOD, r.q_value, job.fdr.level, r.significant,
+                                              r.significant)) for r in results)
     rule = ev.TwoPeriodRule(weight_now=d.weight_now)
     hysteresis = ev.Hysteresis(clear_above=d.clear_above, quiet_periods=d.quiet_periods)
-    cfg = {m.name: m for m in job.metrics}
     before = previous.period if previous.adjacent else None
 
     tracks = {r.metric: ev.Track(_p(r.p_value), previous.p_value(r.metric), previous.state(r.metric),
@@ -194,9 +235,19 @@ def decide_period(results: Sequence[MetricResult], job: JobConfig, previous: Pre
                   for name in r.relevant_checks}
         on = dec.state.on
         gated = gate(r, on, pair_level, job)
+        gated = replace(gated, segments=_sized(gated, cfg.get(r.metric)))
         segments = _held_flags(gated.segments, r, previous.flags(r.metric), on, hysteresis.quiet_periods)
         out.append(replace(gated, segments=segments, decision=verdict, check_decisions=checks))
     return tuple(out)
+
+
+def _sized(r: MetricResult, metric: MetricConfig | None) -> tuple[SegmentRow, ...]:
+    """The segment rows with the flags (and directions) of differences below
+    ``min_difference`` taken away."""
+    if metric is None or metric.min_difference is None:
+        return r.segments
+    return tuple(s if (s.flag is None and s.direction is None) or large_enough(r, s.segment, metric)
+                 else replace(s, flag=None, direction=None) for s in r.segments)
 
 
 def _held_flags(rows: Sequence[SegmentRow], r: MetricResult, before: Mapping[str, tuple[str, int]], on: bool,

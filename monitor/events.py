@@ -66,7 +66,7 @@ import math
 from dataclasses import dataclass, field
 from typing import Any, Mapping, Protocol, Sequence
 
-from . import methods
+from . import decisions, methods
 from .config import JobConfig
 from .model import (  # noqa: F401 - Event re-exported for callers of this module
     EVENT_KINDS, RULE_TWO_PERIOD, Event, MetricResult,
@@ -138,13 +138,13 @@ class Baseline:
     def from_stored(cls, period: str, segments: Sequence[str], metrics: Mapping[str, Mapping[str, Any]],
                     job: JobConfig) -> "Baseline":
         """The baseline of ``confirm: 1``: the verdicts of one stored period."""
-        min_effect = {m.name: m.min_effect for m in job.metrics}
+        cfgs = {m.name: m for m in job.metrics}
         sig = {}
         flg = {}
         chk = {}
         for name, entry in metrics.items():
             # under the two-period rule the stored verdict is already the announced state
-            important = _two_period(entry) or _important(_effect(entry), min_effect.get(name))
+            important = _two_period(entry) or _entry_important(entry, cfgs.get(name))
             sig[name] = bool(entry.get("significant")) and important
             # flags of a metric below its min_effect were never announced (derive_events drops them)
             flg[name] = {s["segment"]: s["flag"] for s in entry.get("segments", []) if s.get("flag")} \
@@ -169,7 +169,7 @@ class Baseline:
         base = cls.from_stored(newest.period, newest.segments, newest.metrics, job)
         if k == 1:
             return base
-        min_effect = {m.name: m.min_effect for m in job.metrics}
+        cfgs = {m.name: m for m in job.metrics}
         announced: dict[str, bool] = {}
         metric_runs: dict[str, Run] = {}
         announced_flags: dict[str, dict[str, str | None]] = {}
@@ -179,7 +179,7 @@ class Baseline:
             for name, entry in sp.metrics.items():
                 if entry.get("p_value") is None:  # not computed: no verdict for it or its segments
                     continue
-                important = _important(_effect(entry), min_effect.get(name))
+                important = _entry_important(entry, cfgs.get(name))
                 verdict = bool(entry.get("significant")) and important
                 run = _extend(metric_runs.get(name), verdict, sp.period)
                 metric_runs[name] = run
@@ -225,6 +225,16 @@ def _two_period(entry: Mapping[str, Any]) -> bool:
 
 def _effect(entry: Mapping[str, Any]) -> float | None:
     return (entry.get("effect_size") or {}).get("value")
+
+
+def _entry_important(entry: Mapping[str, Any], cfg: Any) -> bool:
+    """:func:`monitor.decisions.important` of a stored entry (read back typed only when a
+    ``min_difference`` needs the segment rows)."""
+    if cfg is None:
+        return True
+    if cfg.min_difference is None:
+        return _important(_effect(entry), cfg.min_effect)
+    return decisions.important(MetricResult.from_json(entry), cfg)
 
 
 def _important(effect: float | None, min_effect: float | None) -> bool:
@@ -320,7 +330,7 @@ def derive_events(
         # metric-level significance, then segment flags
         was = baseline.significant.get(r.metric, False)
         eff = r.effect_size.value if r.effect_size else math.nan
-        important = _important(eff, m.min_effect if m else None)
+        important = decisions.important(r, m)
         now_sig = r.significant and important
         prev_flags = baseline.flags.get(r.metric, {})
         now_flags = r.flagged if important else {}
@@ -475,7 +485,8 @@ def _segment_emerged(r: MetricResult, seg: str, flag: str, seg_word: str, unit: 
                 "emerged", r.metric, seg,
                 f"{seg_word} {seg}: the gap to the reference {seg_word} {r.reference} on {r.metric} is now "
                 f"{gap}{tail}.",
-                {"flag": flag, "mean": row.mean, "reference": r.reference, **_adjusted_detail(r, seg), **extra})
+                {"flag": flag, "mean": row.mean, "reference": r.reference, **_gap_detail(r, seg, unit),
+                 **_adjusted_detail(r, seg), **extra})
         where = f"{word} the reference {seg_word} {r.reference}"
         count = ""
     else:
@@ -490,7 +501,7 @@ def _segment_emerged(r: MetricResult, seg: str, flag: str, seg_word: str, unit: 
         "emerged", r.metric, seg,
         f"{seg_word} {seg} now stands {where} on {r.metric} ({level} against the rest{count}){tail}.",
         {"flag": flag, "mean": row.mean, "diff_vs_rest": row.diff_vs_rest, "above": row.above,
-         "below": row.below, "reference": r.reference, **extra})
+         "below": row.below, "reference": r.reference, "unit": unit, **extra})
 
 
 def _segment_cleared(r: MetricResult, seg: str, flag: str, seg_word: str, run: Run | None) -> Event:
@@ -548,6 +559,26 @@ def _gap_text(r: MetricResult, seg: str, unit: str | None, decimals: int | None,
     share = f", {100 * pair.diff / ref_mean:+.1f}% of {r.reference}'s mean" if ref_mean else ""
     return (f"{_signed(pair.diff, unit, decimals)} [{_signed(pair.ci_low, None, decimals)}, "
             f"{_signed(pair.ci_high, None, decimals)}] ({'mean difference' + share}{test})")
+
+
+def _gap_detail(r: MetricResult, seg: str, unit: str | None) -> dict[str, Any]:
+    """The gap to the reference as numbers: ``gap`` with its simultaneous interval on the
+    analysed scale and, under ``log``, the ratio of geometric means and the percentage
+    (``percent = 100 (ratio - 1)``), with the geometric means themselves."""
+    pair = next((p for p in r.pairs if p.a == seg and p.b == r.reference), None)
+    if pair is None:
+        return {"unit": unit}
+    out: dict[str, Any] = {"gap": pair.diff, "gap_low": pair.ci_low, "gap_high": pair.ci_high, "unit": unit,
+                           "p_adj": pair.p_adj}
+    if pair.log_scale:
+        ratios = [math.exp(x) if math.isfinite(x) else math.nan for x in (pair.diff, pair.ci_low, pair.ci_high)]
+        rows = {s.segment: s for s in r.segments}
+        gm = [math.exp(rows[x].mean) if x in rows and math.isfinite(rows[x].mean) else math.nan
+              for x in (seg, r.reference)]
+        out.update(ratio=ratios[0], ratio_low=ratios[1], ratio_high=ratios[2],
+                   percent=100 * (ratios[0] - 1), percent_low=100 * (ratios[1] - 1),
+                   percent_high=100 * (ratios[2] - 1), geometric_mean=gm[0], reference_geometric_mean=gm[1])
+    return {k: (None if isinstance(v, float) and not math.isfinite(v) else v) for k, v in out.items()}
 
 
 def _adjusted_detail(r: MetricResult, seg: str) -> dict[str, Any]:

@@ -169,7 +169,7 @@ def test_email_digest_is_delivered_once_with_text_and_html(history, smtp):
     rcpt, raw = smtp.received[0]
     msg = message_from_bytes(raw)
     assert rcpt == ["ops@example.com"] and msg["To"] == "ops@example.com"
-    assert msg["Subject"] == "[segwatch] hubs 2026-W11: 2 events"
+    assert msg["Subject"] == "[segwatch] hubs 2026-W11: dwell now differs (+1 more)"
     parts = {p.get_content_type(): p.get_payload(decode=True).decode() for p in msg.walk() if not p.is_multipart()}
     assert set(parts) == {"text/plain", "text/html"}
     assert "C stands above the rest on dwell." in parts["text/plain"]

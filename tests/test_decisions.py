@@ -251,3 +251,90 @@ def test_bad_decision_settings_name_the_key(tmp_path, decision, message):
 
     with pytest.raises(ConfigError, match=message.replace(".", r"\.")):
         make_job(tmp_path, **decision)
+
+
+# ---------------------------------------------------------------- practical thresholds
+
+
+def _means_result(metric: str, p: float, means: dict[str, float], *, reference: str | None = None,
+                  direction: dict[str, str] | None = None) -> MetricResult:
+    """A metric whose segments have the given means (descriptive differences against the rest)."""
+    direction = direction or {}
+    total = sum(means.values())
+    rows = tuple(SegmentRow(s, 50, m, 1.0, diff_vs_rest=m - (total - m) / (len(means) - 1),
+                            direction=direction.get(s), flag=direction.get(s)) for s, m in means.items())
+    return replace(result(metric, p), segments=rows, reference=reference)
+
+
+def _job_with(tmp_path, **spec):
+    data = {"source": {"url": "sqlite:///x.sqlite", "table": "t", "time_column": "ts", "segment_column": "depot"},
+            "period": "week", "timezone": "UTC", "metrics": [{"column": "m1", **spec}]}
+    return parse_config(data, tmp_path / "t.yaml", environ={})
+
+
+def test_min_difference_in_units_keeps_small_differences_quiet(tmp_path):
+    # A is 1.5 h above the others: significant, but under "at least 2 h" nothing is announced
+    means = {"A": 11.5, "B": 10.0, "C": 10.0, "D": 10.0, "E": 10.0}
+    for threshold, expected in ((2, []), (1, ["emerged", "emerged"])):
+        job = _job_with(tmp_path, min_difference=threshold, unit="h")
+        w = Weeks(job)
+        w.week("2026-W01", [_means_result("m1", 1e-12, means, direction={"A": "high"})])
+        assert [k for _, k in w.kinds()] == expected, threshold
+    job = _job_with(tmp_path, min_difference=1, unit="h")
+    w = Weeks(job)
+    w.week("2026-W01", [_means_result("m1", 1e-12, means, direction={"A": "high"})])
+    (seg,) = [e for _, e in w.events if e.segment == "A"]
+    assert seg.detail["unit"] == "h" and seg.detail["diff_vs_rest"] == pytest.approx(1.5)
+
+
+def test_min_difference_in_percent_of_the_reference(tmp_path):
+    # B is 4% above the reference A, C 8% above: "at least 5%" flags C only
+    means = {"A": 100.0, "B": 104.0, "C": 108.0, "D": 100.0, "E": 100.0}
+    job = _job_with(tmp_path, min_difference="5%", reference="A")
+    decided = decide_period([_means_result("m1", 1e-12, means, reference="A",
+                                           direction={"B": "high", "C": "high"})], job, Previous(None, False, job))
+    assert decided[0].flagged == {"C": "high"}
+
+
+@pytest.mark.parametrize("value, message", [
+    ("5 percent", "is not a number or a percentage"),
+    (0, "is out of range"),
+    (True, "must be a number or a percentage"),
+])
+def test_bad_min_difference_names_the_key(tmp_path, value, message):
+    from monitor.errors import ConfigError
+
+    with pytest.raises(ConfigError, match=r"metrics\[0\]\.min_difference: " + message):
+        _job_with(tmp_path, min_difference=value)
+
+
+def test_min_difference_under_log_must_be_a_percentage(tmp_path):
+    from monitor.errors import ConfigError
+
+    with pytest.raises(ConfigError, match="must be a percentage under transform: log"):
+        _job_with(tmp_path, min_difference=2, transform="log")
+    assert _job_with(tmp_path, min_difference="5%", transform="log").metrics[0].min_difference_percent
+
+
+# ---------------------------------------------------------------- digests
+
+
+def test_digest_headline_names_the_change_with_units():
+    from monitor.delivery import digest
+
+    events = [
+        {"kind": "data_quality", "metric": None, "segment": None, "detail": {"problem": "null_segment"}},
+        {"kind": "emerged", "metric": "dwell_hours", "segment": None, "detail": {}},
+        {"kind": "emerged", "metric": "dwell_hours", "segment": "Quarry",
+         "detail": {"flag": "high", "diff_vs_rest": 2.79, "unit": "h"}},
+        {"kind": "assumption_broken", "metric": "counter_wait_min", "segment": None,
+         "detail": {"check": "brown_forsythe"}},
+    ]
+    assert digest.headline(events) == "dwell_hours now differs (+3 more)"
+    assert digest.headline(events[2:3]) == "dwell_hours: Quarry above the others by 2.79 h"
+    groups = digest.grouped(events)
+    assert [m for m, _ in groups] == ["dwell_hours", "counter_wait_min", None]
+    assert [e["segment"] for e in groups[0][1]] == [None, "Quarry"]
+    gap = {"kind": "emerged", "metric": "income", "segment": "Saver",
+           "detail": {"flag": "low", "reference": "Basic", "percent": -24.3}}
+    assert digest.headline([gap]) == "income: Saver -24.3% against Basic"

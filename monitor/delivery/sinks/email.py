@@ -27,6 +27,7 @@ from html import escape
 from typing import Any, Mapping, Sequence
 
 from monitor.errors import DeliveryError
+from monitor.delivery import digest
 from monitor.redact import redact
 
 from .base import KINDS_KEY, Attachment, Sink, SinkType, SpecReader, batch_id, read_kinds
@@ -97,18 +98,26 @@ class EmailSink:
     def message(self, job: str, period: str | None, events: Sequence[Mapping[str, Any]]) -> EmailMessage:
         msg = EmailMessage()
         n = len(events)
-        msg["Subject"] = f"{self.cfg.subject_prefix} {job} {period}: {n} event{'s' if n != 1 else ''}"
+        msg["Subject"] = " ".join(redact(f"{self.cfg.subject_prefix} {job} {period}: {digest.headline(events)}").split())
         msg["From"] = self.cfg.sender
         msg["To"] = ", ".join(self.cfg.to)
         msg["Date"] = formatdate(usegmt=True)
         msg["Message-ID"] = f"<{batch_id(events)}.{hashlib.sha256(self.recipient.encode()).hexdigest()[:8]}@segwatch>"
-        lines = [f"segwatch: {job}, period {period}", ""]
-        lines += [f"- [{e['kind']}] {redact(e['message'])}" for e in events]
+        groups = digest.grouped(events)  # a metric's events together, the most important first
+        lines = [f"segwatch: {job}, period {period}: {n} event{'s' if n != 1 else ''}", ""]
+        for metric, items in groups:
+            lines.append(f"{metric}:" if metric else "the whole table:")
+            lines += [f"- [{e['kind']}] {redact(e['message'])}" for e in items]
+            lines.append("")
+        lines.pop()
         lines += ["", "Statistical significance is not practical importance; review before acting."]
         msg.set_content("\n".join(lines))
-        items = "".join(f"<li><b>{escape(e['kind'])}</b>: {escape(redact(e['message']))}</li>" for e in events)
+        items = "".join(
+            f"<h3>{escape(metric) if metric else 'the whole table'}</h3><ul>"
+            + "".join(f"<li><b>{escape(e['kind'])}</b>: {escape(redact(e['message']))}</li>" for e in group)
+            + "</ul>" for metric, group in groups)
         msg.add_alternative(
-            f"<html><body><p>segwatch: {escape(job)}, period {escape(str(period))}</p><ul>{items}</ul>"
+            f"<html><body><p>segwatch: {escape(job)}, period {escape(str(period))}</p>{items}"
             "<p><small>Statistical significance is not practical importance; review before acting.</small></p>"
             "</body></html>", subtype="html")
         if self.attachment is not None and period is not None:
