@@ -24,7 +24,7 @@ with a note and ``op_period_empty``, and earlier results of it (if any) are kept
 from __future__ import annotations
 
 import logging
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import timedelta
 from typing import Any, Callable, Iterable
 
@@ -43,6 +43,9 @@ from .source import Source
 
 log = logging.getLogger(__name__)
 
+#: At most this many never-completed periods before a run are computed first (:meth:`Job.owed_before`).
+MAX_COMPUTED_FIRST = 12
+
 
 @dataclass(frozen=True)
 class PeriodReport:
@@ -58,6 +61,7 @@ class PeriodReport:
     segments: tuple[str, ...]
     delivery: RelayOutcome
     note: str | None = None  # why the period was not stored (the source had no rows)
+    computed_first: tuple[str, ...] = ()  # skipped periods before this one, computed first (oldest first)
 
     def to_json(self, pairs: str = "all") -> dict[str, Any]:
         """The ``run --json`` document; ``pairs`` says which pairs each metric holds
@@ -77,6 +81,8 @@ class PeriodReport:
         }
         if self.note:
             doc["note"] = self.note
+        if self.computed_first:
+            doc["computed_first"] = list(self.computed_first)
         return doc
 
 
@@ -161,8 +167,36 @@ class Job:
         return (entry is not None and entry.state == "done" and entry.finished_at is not None
                 and entry.finished_at >= period.end_utc + self.settle)
 
+    def owed_before(self, period: Period) -> list[Period]:
+        """The periods between the latest stored one and ``period`` that were never
+        completed (failed, interrupted or not attempted), oldest first.
+
+        Events compare a period with the one immediately before it; a run of a later
+        period over such a gap would compare with an older period and announce a change
+        that the skipped period announces again when it is computed. :meth:`run` computes
+        them first. A period done without rows ends the walk (there is nothing to
+        compute; the next period is then judged alone, and says so). Beyond
+        :data:`MAX_COMPUTED_FIRST` periods nothing is filled in.
+        """
+        stored = self.history.recent(period, 1)
+        if not stored:
+            return []
+        latest, gap, p = stored[0].period, [], period.previous()
+        while p.ident != latest:
+            entry = self.ledger.entry(p.ident)
+            if entry is not None and entry.state == "done":
+                break
+            gap.append(p)
+            if len(gap) > MAX_COMPUTED_FIRST:
+                log.warning("job %s: %d periods before %s were never completed; they are not computed first "
+                            "(backfill them): %s is judged alone", self.config.job, len(gap), period.ident,
+                            period.ident)
+                return []
+            p = p.previous()
+        return gap[::-1]
+
     def run(self, period: Period | str | None = None, *, only_if_owed: bool = False, store: bool = True,
-            deliver: bool | None = None) -> PeriodReport | None:
+            deliver: bool | None = None, fill: bool = True) -> PeriodReport | None:
         """Compute one period, store it (replacing an earlier run of it) and deliver its alerts.
 
         Raises :class:`~monitor.errors.PeriodBusy` when another process holds the
@@ -184,6 +218,17 @@ class Job:
         if not store:
             return self._preview(period)
         cfg = self.config
+        first: list[str] = []
+        if fill:
+            for owed in self.owed_before(period):
+                log.info("job %s: %s was never completed; computing it before %s, which is compared with it",
+                         cfg.job, owed.ident, period.ident)
+                try:
+                    self.run(owed, deliver=deliver, fill=False)
+                except PeriodBusy as exc:
+                    log.warning("job %s: %s", cfg.job, exc)
+                    break
+                first.append(owed.ident)
         claim = self.ledger.claim(period.ident)
         if not claim.won:
             raise PeriodBusy(f"period {period.ident} of job {cfg.job} is being computed by {claim.owner} "
@@ -204,7 +249,7 @@ class Job:
         except BaseException as exc:
             self._failed(claim, exc)
             raise
-        return report
+        return replace(report, computed_first=tuple(first)) if first else report
 
     def _preview(self, period: Period) -> PeriodReport:
         """One period computed and compared with the stored history, nothing written or sent."""

@@ -338,3 +338,64 @@ def test_digest_headline_names_the_change_with_units():
     gap = {"kind": "emerged", "metric": "income", "segment": "Saver",
            "detail": {"flag": "low", "reference": "Basic", "percent": -24.3}}
     assert digest.headline([gap]) == "income: Saver -24.3% against Basic"
+
+
+# ---------------------------------------------------------------- a real job over a gap
+
+
+def _weekly_db(path: Path, shift_from: int) -> None:
+    """Three depots, 60 records a week each; from week ``shift_from`` depot A's dwell is
+    2 sd higher (invented data for the test)."""
+    import sqlite3
+    from datetime import date, timedelta
+
+    rng = np.random.default_rng(3)
+    con = sqlite3.connect(path)
+    con.execute("CREATE TABLE shipments (shipped_at TEXT, depot TEXT, dwell REAL)")
+    for week in range(1, 15):
+        monday = date.fromisocalendar(2026, week, 1)
+        for depot in "ABC":
+            shift = 2.0 if depot == "A" and week >= shift_from else 0.0
+            con.executemany("INSERT INTO shipments VALUES (?, ?, ?)",
+                            [((monday + timedelta(days=int(d))).isoformat() + " 10:00:00", depot, float(v))
+                             for d, v in zip(rng.integers(0, 7, 60), rng.normal(10 + shift, 1.0, 60))])
+    con.commit()
+    con.close()
+
+
+def test_a_later_run_over_a_failed_period_computes_it_first_and_announces_once(tmp_path):
+    # issue 18, item 4: W11 crashed, then `run --period 2026-W12` compared W12 with W10 and announced the
+    # change, and the rerun of W11 announced it again
+    from datetime import datetime, timezone
+
+    from monitor.clock import FixedClock
+    from monitor.runner import Job
+
+    _weekly_db(tmp_path / "src.sqlite", shift_from=11)
+    data = {"job": "gap", "source": {"url": f"sqlite:///{tmp_path / 'src.sqlite'}", "table": "shipments",
+                                     "time_column": "shipped_at", "segment_column": "depot"},
+            "period": "week", "timezone": "UTC", "metrics": ["dwell"],
+            "history": {"url": f"sqlite:///{tmp_path / 'h.sqlite'}"},
+            "alerts": [{"type": "log", "path": str(tmp_path / "alerts.jsonl")}]}
+    job = Job(parse_config(data, tmp_path / "gap.yaml", environ={}),
+              clock=FixedClock(datetime(2026, 5, 1, tzinfo=timezone.utc)))
+    try:
+        job.backfill("2026-W01", "2026-W10")
+        claim = job.ledger.claim("2026-W11")
+        job.ledger.start(claim)
+        job.ledger.fail(claim, "killed")  # what a crash leaves once its lease is gone
+        report = job.run("2026-W12")
+        assert report.computed_first == ("2026-W11",)
+        assert report.to_json()["computed_first"] == ["2026-W11"]
+        w11 = job.history.recent(job.period("2026-W12"), 1)[0]
+        assert w11.period == "2026-W11"
+        assert report.metrics[0].decision.before == "2026-W11"
+        job.run("2026-W11")  # run again by hand: nothing new
+        job.run("2026-W12")
+    finally:
+        job.close()
+    import json
+
+    lines = [json.loads(x) for x in (tmp_path / "alerts.jsonl").read_text().splitlines()]
+    emerged = [(x["period"], x["segment"]) for x in lines if x["kind"] == "emerged"]
+    assert emerged == [("2026-W11", None), ("2026-W11", "A")]
