@@ -632,14 +632,17 @@ def _metric_row(m: dict[str, Any]) -> list[str]:
     eff = m.get("effect_size") or {}
     flagged = _standing_apart(m.get("segments", []))
     broken = [k for k, c in (m.get("assumptions") or {}).items() if c.get("passed") is False]
-    return [m["metric"], m["method"], stat, _p(m.get("p_value")), _p(m.get("q_value")),
+    d = m.get("decision") or {}
+    evidence = _p(d.get("evidence")) if d.get("rule") == "two_period" else "-"
+    return [m["metric"], m["method"], stat, _p(m.get("p_value")), _p(m.get("q_value")), evidence,
             "yes" if m.get("significant") else "no",
             f"{eff.get('name', '').replace('_squared', '²').replace('omega', 'ω').replace('epsilon', 'ε')} "
             f"{_g(eff.get('value'), 2)}" if eff else "-",
             flagged or "-", ", ".join(broken) or "-"]
 
 
-METRIC_HEADER = ["metric", "method", "statistic", "p", "q", "sig", "effect", "stands apart", "checks failing"]
+METRIC_HEADER = ["metric", "method", "statistic", "p", "q", "evidence", "differs", "effect", "stands apart",
+                 "checks failing"]
 
 
 def _adjusted_lines(m: dict[str, Any]) -> str:
@@ -664,6 +667,20 @@ def _pct(x: Any) -> str:
     return "n/a" if x is None else f"{x:+.1f}%"
 
 
+def _decision_line(report: PeriodReport) -> str:
+    """What "differs" means in this run, in one sentence (the decision rule and its budget)."""
+    verdicts = [m.decision for m in report.metrics if m.decision is not None]
+    if not verdicts:
+        return ""
+    v = verdicts[0]
+    if v.rule != "two_period":
+        return f"\ndiffers: q at most {v.level:g} in this period (decision.rule: per_period).\n"
+    return (f"\ndiffers: the evidence of this period and the one before it (p*) is at most {v.level:.2g}, "
+            f"the level of the job's budget of false alarms a year (decision.false_alarms_per_year) over "
+            f"{sum(1 for m in report.metrics if m.computed)} metrics; a real change is usually announced in its "
+            "first or second period.\n")
+
+
 def render_report(report: PeriodReport) -> str:
     doc = report.to_json()
     p = report.period
@@ -672,6 +689,7 @@ def render_report(report: PeriodReport) -> str:
     if report.rows == 0:
         return head + f"{report.note or 'the source had no rows in this period'}\n"
     body = _table(METRIC_HEADER, [_metric_row(m) for m in doc["metrics"]])
+    body += _decision_line(report)
     body += "".join(_adjusted_lines(m) for m in doc["metrics"] if m.get("adjustment"))
     notes = [f"  {clean(m['metric'])}: {clean(m['note'])}" for m in doc["metrics"] if m.get("note")]
     if notes:

@@ -20,6 +20,7 @@ import subprocess
 from dataclasses import dataclass
 from typing import Any, Mapping, Sequence
 
+from monitor.delivery import digest
 from monitor.errors import DeliveryError
 from monitor.redact import redact, redact_argv
 
@@ -66,7 +67,8 @@ class CommandSink:
         return channel_name(self.run)
 
     def send(self, job: str, period: str | None, events: Sequence[Mapping[str, Any]]) -> None:
-        body = json.dumps({"job": job, "period": period, "events": [alert_line(e) for e in events]}, default=str)
+        body = json.dumps({"job": job, "period": period, "headline": redact(digest.headline(events)),
+                           "events": [alert_line(e) for e in digest.ordered(events)]}, default=str)
         program = redact(self.run[0])
         try:
             proc = subprocess.run(list(self.run), input=body.encode(), capture_output=True, timeout=self.timeout)

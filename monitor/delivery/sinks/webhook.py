@@ -26,6 +26,7 @@ from dataclasses import dataclass
 from typing import Any, Mapping, Sequence
 from urllib.parse import urlsplit
 
+from monitor.delivery import digest
 from monitor.errors import DeliveryError
 from monitor.redact import redact
 
@@ -102,7 +103,8 @@ class WebhookSink:
         return channel_name(self.url)
 
     def send(self, job: str, period: str | None, events: Sequence[Mapping[str, Any]]) -> None:
-        body = json.dumps({"job": job, "period": period, "events": [alert_line(e) for e in events]},
+        body = json.dumps({"job": job, "period": period, "headline": redact(digest.headline(events)),
+                           "events": [alert_line(e) for e in digest.ordered(events)]},
                           default=str).encode()
         headers = {"Content-Type": "application/json", "Idempotency-Key": batch_id(events),
                    "User-Agent": "segwatch", **dict(self.headers or {})}
