@@ -219,14 +219,22 @@ def decide_period(results: Sequence[MetricResult], job: JobConfig, previous: Pre
     for r in results:
         for name in r.relevant_checks:
             chk = r.assumptions.get(name)
+            # a break is announced only in a period whose own check fails (never "fails" beside a
+            # passing p-value, whatever the budget's level for few monthly checks)
             check_tracks[(r.metric, name)] = ev.Track(
                 _p(chk.value) if chk is not None and chk.passed is not None else None,
-                previous.check_p(r.metric, name), previous.check_state(r.metric, name))
+                previous.check_p(r.metric, name), previous.check_state(r.metric, name),
+                important=chk is not None and chk.passed is False)
     check_decisions = ev.decide(rule, hysteresis, ev.Budget(d.check_alarms_per_year, job.period), check_tracks)
 
     on_count = sum(1 for x in metric_decisions.decisions.values() if x.state.on)
     computed = sum(1 for r in results if r.computed)
     pair_level = job.alpha * on_count / computed if job.fdr.pairs == "selective" and computed else job.alpha
+    # every gap to a reference inside an announced metric is an alarm of its own: the budget's
+    # level over all of them (Bonferroni over the gaps' many-to-one adjusted p-values: conservative)
+    gap_tests = sum(1 for r in results if r.reference is not None and metric_decisions.decisions[r.metric].state.on
+                    for p in r.pairs if p.b == r.reference and _p(p.p_adj) is not None)
+    gap_level = ev.Budget(d.false_alarms_per_year, job.period).level(gap_tests)
     out = []
     for r in results:
         dec = metric_decisions.decisions[r.metric]
@@ -236,7 +244,10 @@ def decide_period(results: Sequence[MetricResult], job: JobConfig, previous: Pre
         on = dec.state.on
         gated = gate(r, on, pair_level, job)
         gated = replace(gated, segments=_sized(gated, cfg.get(r.metric)))
-        segments = _held_flags(gated.segments, r, previous.flags(r.metric), on, hysteresis.quiet_periods)
+        if r.reference is not None:
+            segments = _gap_flags(gated, previous, on, rule, hysteresis, gap_level, cfg.get(r.metric))
+        else:
+            segments = _held_flags(gated.segments, r, previous.flags(r.metric), on, hysteresis.quiet_periods)
         out.append(replace(gated, segments=segments, decision=verdict, check_decisions=checks))
     return tuple(out)
 
@@ -248,6 +259,49 @@ def _sized(r: MetricResult, metric: MetricConfig | None) -> tuple[SegmentRow, ..
         return r.segments
     return tuple(s if (s.flag is None and s.direction is None) or large_enough(r, s.segment, metric)
                  else replace(s, flag=None, direction=None) for s in r.segments)
+
+
+def _gap_flags(r: MetricResult, previous: Previous, on: bool, rule: ev.Rule, hysteresis: ev.Hysteresis,
+               level: float, metric: MetricConfig | None) -> tuple[SegmentRow, ...]:
+    """Gaps to the reference under the two-period rule: each segment's gap is a test of
+    its own (its many-to-one adjusted p-value, combined with the previous period's when
+    the gap kept its sign), announced at the metric's level and taken back with the same
+    hysteresis; only inside an announced metric. ``held`` counts the quiet periods of an
+    announced gap."""
+    if not on:
+        return r.segments
+    pairs = {p.a: p for p in r.pairs if p.b == r.reference}
+    entry = previous.entry(r.metric) if previous.adjacent else None
+    before_pairs = {p.get("a"): p for p in (entry or {}).get("pairs") or () if p.get("b") == r.reference}
+    before_flags = previous.flags(r.metric)
+    out = []
+    for s in r.segments:
+        pair = pairs.get(s.segment)
+        if pair is None or s.excluded or not math.isfinite(pair.diff) or pair.diff == 0:
+            out.append(replace(s, flag=None, held=0))
+            continue
+        direction = "high" if pair.diff > 0 else "low"
+        held = before_flags.get(s.segment)
+        prior = before_pairs.get(s.segment) or {}
+        prior_diff = prior.get("diff")
+        same_sign = isinstance(prior_diff, (int, float)) and prior_diff * pair.diff > 0
+        p_before = _p(prior.get("p_adj")) if same_sign else None
+        important = large_enough(r, s.segment, metric)
+        dec = ev.step(rule, hysteresis, None if held is None or held[0] != direction else ev.State(True, held[1]),
+                      _p(pair.p_adj), p_before, level, important=important)
+        if held is not None and held[0] != direction and not dec.state.on:
+            # the announced gap changed sign without evidence for the new one: no evidence for the old
+            # direction this period (p = 1), which counts towards clearing it like any quiet period
+            old = ev.step(rule, hysteresis, ev.State(True, held[1]), 1.0,
+                          _p(prior.get("p_adj")) if not same_sign else None, level)
+            if old.state.on:
+                out.append(replace(s, flag=held[0], direction=None, held=old.state.quiet))
+                continue
+        if dec.state.on:
+            out.append(replace(s, flag=direction, direction=direction, held=dec.state.quiet))
+        else:
+            out.append(replace(s, flag=None, direction=direction if dec.reject else None, held=0))
+    return tuple(out)
 
 
 def _held_flags(rows: Sequence[SegmentRow], r: MetricResult, before: Mapping[str, tuple[str, int]], on: bool,
