@@ -443,3 +443,28 @@ def test_gaps_to_a_reference_are_announced_on_their_own_evidence(tmp_path):
     for i, (c_p, c_diff) in enumerate(((0.5, -0.2), (1e-7, -0.6), (0.5, 0.05), (0.6, 0.02), (0.7, 0.01)), start=1):
         w.week(f"2026-0{i}", [month(i, c_p, c_diff)])
     assert w.kinds("m1", "C") == [("2026-02", "emerged"), ("2026-05", "cleared")]
+
+
+def test_the_report_states_the_level_a_stored_week_was_judged_at(tmp_path):
+    # judged with a budget of 1 false alarm a year (level 1/52.18 for one metric); the config now says 10:
+    # the report of the stored week still gives the stored level, never today's
+    from datetime import datetime, timezone
+
+    from monitor.clock import FixedClock
+    from monitor.present.report import report_html
+    from monitor.runner import Job
+
+    _weekly_db(tmp_path / "src.sqlite", shift_from=3)
+    data = {"job": "rep", "source": {"url": f"sqlite:///{tmp_path / 'src.sqlite'}", "table": "shipments",
+                                     "time_column": "shipped_at", "segment_column": "depot"},
+            "period": "week", "timezone": "UTC", "metrics": ["dwell"],
+            "history": {"url": f"sqlite:///{tmp_path / 'h.sqlite'}"}}
+    clock = FixedClock(datetime(2026, 5, 1, tzinfo=timezone.utc))
+    with Job(parse_config(data, tmp_path / "rep.yaml", environ={}), clock=clock) as job:
+        job.backfill("2026-W01", "2026-W04")
+    later = parse_config(dict(data, decision={"false_alarms_per_year": 10}), tmp_path / "rep.yaml", environ={})
+    with Job(later, clock=clock) as job:
+        html = report_html(job.history, later, "2026-W04")
+    stored = f"{1 / WEEKS_A_YEAR:.2g}"
+    assert f"at or below the level {stored}" in html, stored
+    assert f"level {10 / WEEKS_A_YEAR:.2g}" not in html

@@ -522,6 +522,8 @@ def _notes(m: MetricResult) -> list[str]:
 
 def _overview(d: ReportData) -> str:
     rows = []
+    two_level = next((sr.result.decision.level for sr in d.results if sr.result.decision is not None
+                      and sr.result.decision.rule == "two_period" and _ok(sr.result.decision.level)), None)
     for sr in d.results:
         m = sr.result
         cfg = d.metric_config.get(m.metric)
@@ -548,10 +550,14 @@ def _overview(d: ReportData) -> str:
     return (
         "<section id=\"metrics\" aria-labelledby=\"metrics-h\">\n"
         "<h2 id=\"metrics-h\">All metrics, smallest q-value first</h2>\n"
-        f"<p class=\"hint\">q is p adjusted across the {len(d.results)} metrics of the period; a metric "
-        + (f"differs when q is at most {lvl(d.fdr_level)} (the level this period was judged at). "
-           if d.fdr_level is not None else
-           "differs as judged when it was stored (the level was not recorded then). ")
+        + (f"<p class=\"hint\">A metric differs when the evidence of this period and the one before it "
+           f"is at most the level of the job's false-alarm budget ({lvl(two_level)} per metric this period, "
+           f"as stored; q, p adjusted across the {len(d.results)} metrics, is shown for reading). "
+           if two_level is not None else
+           f"<p class=\"hint\">q is p adjusted across the {len(d.results)} metrics of the period; a metric "
+           + (f"differs when q is at most {lvl(d.fdr_level)} (the level this period was judged at). "
+              if d.fdr_level is not None else
+              "differs as judged when it was stored (the level was not recorded then). "))
         + f"A {_e(d.segment_word)} can stand apart only inside a metric "
         "that differs. Watched checks decide the method and raise events; the others are shown for "
         "information. The second line of each metric says which test was used and why.</p>\n"
@@ -611,10 +617,19 @@ def _summary(d: ReportData, m: MetricResult, decimals: int | None) -> str:
     q = m.q_value
     if not m.computed:
         return f"Not computed this {word}: {_e(m.note or 'no reason stored')}."
+    verdict = m.decision
+    two = verdict is not None and verdict.rule == "two_period"
+    if two:  # the stored verdict and the level it was held to, never today's config
+        over = f"over this {word} and {_e(verdict.before)}" if verdict.before else f"from this {word} alone"
+        why = f"evidence {pval(verdict.evidence)} {over}"
+        at = lvl(verdict.level)
     if m.significant:
-        text = (f"It differs by {seg} this {word} (q {pval(q)}, at or below {lvl(d.fdr_level)}, the level it was "
-                f"judged at)." if d.fdr_level is not None else
-                f"It differs by {seg} this {word} (q {pval(q)}; judged so when stored, at a level not recorded).")
+        if two:
+            text = f"It differs by {seg} this {word} ({why}, at or below the level {at} of the job's false-alarm budget)."
+        else:
+            text = (f"It differs by {seg} this {word} (q {pval(q)}, at or below {lvl(d.fdr_level)}, the level it was "
+                    f"judged at)." if d.fdr_level is not None else
+                    f"It differs by {seg} this {word} (q {pval(q)}; judged so when stored, at a level not recorded).")
         sc = _scale(d.metric_config.get(m.metric))
         for s in m.segments:
             if s.flag in ("high", "low") and _ok(s.mean) and _ok(s.diff_vs_rest):
@@ -625,6 +640,8 @@ def _summary(d: ReportData, m: MetricResult, decimals: int | None) -> str:
         if not _flagged(m):
             text += f" No single {seg} stands apart from most of the others."
         return text
+    if two:
+        return f"No clear difference by {seg} this {word} ({why}, above the level {at})."
     if d.fdr_level is None:
         return f"No clear difference by {seg} this {word} (q {pval(q)}; judged so when stored, at a level not recorded)."
     return f"No clear difference by {seg} this {word} (q {pval(q)}, above {lvl(d.fdr_level)}, the level it was judged at)."
