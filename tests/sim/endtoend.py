@@ -84,6 +84,8 @@ def write_project(folder: Path, values: list[list[list[np.ndarray]]], confirm: i
         f"metrics:\n{metrics}"
         "fdr: {method: bh, level: 0.05}\n"
         f"confirm: {confirm}\n"
+        + ("decision: {rule: per_period}\n" if confirm > 1 else "")
+        +
         "history: {url: 'sqlite:///history.sqlite'}\n",
         encoding="utf-8",
     )

@@ -58,7 +58,9 @@ from monitor.analysis import (
 )
 from monitor import methods
 from monitor.config import JobConfig, parse_config
+from monitor.decisions import decide_period, previous_state
 from monitor.events import Baseline, Event, derive_events, lookback
+from monitor.periods import parse_period
 from monitor.methods import Segments
 from monitor.stats import diagnostics
 from monitor.stats.summary import Moments
@@ -244,7 +246,9 @@ def sim_job(metrics: int, *, test: str = "auto", fdr_method: str = "bh", level: 
 
     Built by :func:`monitor.config.parse_config` from the same mapping a YAML file
     would give, so every setting is checked as a user's would be. The source and
-    history URLs are placeholders (the simulation reads and writes neither).
+    history URLs are placeholders (the simulation reads and writes neither). The
+    decision rule is ``per_period`` (the rule the FDR and ``confirm`` tables measure)
+    unless ``extra`` names one (``extra={"decision": {"rule": "two_period"}}``).
     """
     data: dict[str, Any] = {
         "job": "sim",
@@ -255,6 +259,7 @@ def sim_job(metrics: int, *, test: str = "auto", fdr_method: str = "bh", level: 
         "metrics": [{"column": metric_name(i), "test": test} for i in range(metrics)],
         "fdr": {"method": fdr_method, "level": level},
         "confirm": confirm,
+        "decision": {"rule": "per_period"},
     }
     if min_rows is not None:
         data["quality"] = {"min_rows_per_segment": min_rows}
@@ -366,12 +371,15 @@ class PeriodOutcome:
 
 
 class Pipeline:
-    """A job run period after period without SQL: analysis, events, an in-memory history.
+    """A job run period after period without SQL: analysis, decisions, events, an in-memory history.
 
-    Each period's results are kept as their JSON entries (what the history stores);
-    the baseline for the next period is :meth:`Baseline.from_history` over the latest
-    :func:`~monitor.events.lookback` of them, once per value in ``confirms`` (the
-    analysis is shared; only the event rules differ).
+    Each period's results go through the job's decision rule
+    (:func:`monitor.decisions.decide_period`, against the previous stored period, as
+    :class:`monitor.runner.Job` does) and are kept as their JSON entries (what the
+    history stores); the baseline for the next period is :meth:`Baseline.from_history`
+    over the latest :func:`~monitor.events.lookback` of them, once per value in
+    ``confirms`` (the analysis is shared; the decisions and event rules differ, and so
+    does each one's history). ``confirm`` values above 1 belong to the per-period rule.
 
     Parameters
     ----------
@@ -380,7 +388,9 @@ class Pipeline:
         The ``confirm`` values to derive events for; default ``(job.confirm,)``.
     full : bool
         Analyse every metric in full (:func:`~monitor.analysis.analyse_period`)
-        instead of :func:`analyse_gated`.
+        instead of :func:`analyse_gated` (which, under the two-period rule, also
+        analyses in full every metric announced before or with a p-value that could
+        give evidence).
     """
 
     def __init__(self, job: JobConfig, confirms: Sequence[int] | None = None, *, full: bool = False):
@@ -388,24 +398,38 @@ class Pipeline:
         self.confirms = tuple(confirms) if confirms else (job.confirm,)
         self.jobs = {k: job if k == job.confirm else _with_confirm(job, k) for k in self.confirms}
         self.full = full
-        self.history: list[_Stored] = []  # newest first
+        self.histories: dict[int, list[_Stored]] = {k: [] for k in self.confirms}  # newest first
+
+    @property
+    def history(self) -> list[_Stored]:
+        return self.histories[self.confirms[0]]
 
     def run(self, ident: str, inputs: Sequence[MetricInput], segments: Sequence[str]) -> PeriodOutcome:
-        results = analyse_period(inputs, self.job) if self.full else analyse_gated(inputs, self.job)
+        if self.full or any(j.decision.rule != "per_period" for j in self.jobs.values()):
+            results = analyse_period(inputs, self.job)  # flags of announced metrics need their pairs
+        else:
+            results = analyse_gated(inputs, self.job)
         return self.record(ident, results, segments)
 
     def record(self, ident: str, results: Sequence[MetricResult], segments: Sequence[str]) -> PeriodOutcome:
-        """Derive the period's events from ``results`` and store them (as :meth:`run` does)."""
+        """Decide the period, derive its events from ``results`` and store them (as :meth:`run` does)."""
         events = {}
+        decided_first: tuple[MetricResult, ...] = ()
+        before = parse_period(self.job.period, ident, self.job.timezone).previous().ident
         for k, job in self.jobs.items():
-            base = Baseline.from_history(self.history[:lookback(k)], job)
-            events[k] = tuple(derive_events(job, results, segments, 0, 0, base))
-        self.history.insert(0, _Stored(ident, tuple(segments), {r.metric: r.to_json() for r in results}))
-        del self.history[max(lookback(k) for k in self.confirms):]
-        return PeriodOutcome(ident, tuple(results), events)
+            history = self.histories[k]
+            decided = decide_period(results, job, previous_state(history, before, job))
+            base = Baseline.from_history(history[:lookback(k)], job)
+            events[k] = tuple(derive_events(job, decided, segments, 0, 0, base))
+            history.insert(0, _Stored(ident, tuple(segments), {r.metric: r.to_json() for r in decided}))
+            del history[max(lookback(k), 1):]
+            decided_first = decided_first or decided
+        return PeriodOutcome(ident, decided_first, events)
 
 
 def _with_confirm(job: JobConfig, confirm: int) -> JobConfig:
+    if confirm > 1:
+        return replace(job, confirm=confirm, decision=replace(job.decision, rule="per_period"))
     return replace(job, confirm=confirm)
 
 
