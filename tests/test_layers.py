@@ -7,7 +7,7 @@ The data's path, from the floor up (the module map in DEVELOPERS.md follows this
 1. variants behind small protocols: database engines (``engines/``), test methods
    (``methods/``), alert sinks (``delivery/sinks/``);
 2. ``config.py`` (each variant parses its own part of the config);
-3. ``source/``; 4. ``analysis.py``, ``adjustment.py``; 5. ``events.py``; 6. ``store/``;
+3. ``source/``; 4. ``analysis.py``, ``adjustment.py``, ``decisions.py``; 5. ``events.py``; 6. ``store/``;
 7. ``delivery/relay.py``, ``present/``; 8. ``runner.py``; 9. ``scheduler.py``;
 10. ``cli.py``, ``__main__.py``.
 
@@ -32,10 +32,10 @@ LAYERS: list[tuple[int, tuple[str, ...]]] = [
     (0, ("monitor", "monitor.model", "monitor.errors", "monitor.clock", "monitor.periods", "monitor.redact",
          "monitor.logs", "monitor.stats", "monitor.stats.*")),
     (1, ("monitor.engines", "monitor.engines.*", "monitor.methods", "monitor.methods.*", "monitor.delivery",
-         "monitor.delivery.sinks", "monitor.delivery.sinks.*")),
+         "monitor.delivery.sinks", "monitor.delivery.sinks.*", "monitor.delivery.digest")),
     (2, ("monitor.config",)),
     (3, ("monitor.source", "monitor.source.*")),
-    (4, ("monitor.analysis", "monitor.adjustment")),
+    (4, ("monitor.analysis", "monitor.adjustment", "monitor.decisions")),
     (5, ("monitor.events",)),
     (6, ("monitor.store", "monitor.store.*")),
     (7, ("monitor.delivery.relay", "monitor.present", "monitor.present.*")),
