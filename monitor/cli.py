@@ -16,7 +16,7 @@ import sys
 import traceback
 from datetime import datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Sequence, TextIO
+from typing import TYPE_CHECKING, Any, Mapping, Sequence, TextIO
 
 from . import __version__, methods
 from .errors import EXIT_BUSY, EXIT_EMPTY, EXIT_FAILED, SegwatchError, UsageError
@@ -754,6 +754,15 @@ def _grid(header: Sequence[str], rows: Sequence[Sequence[str]], right: Sequence[
     return "\n".join([line(header), "  ".join("-" * w for w in widths), *(line(r) for r in rows)]) + "\n"
 
 
+def _two_period(r: MetricResult) -> bool:
+    return r.decision is not None and r.decision.rule == "two_period"
+
+
+def _shown_value(r: MetricResult) -> float:
+    """What a history cell shows: the decision rule's evidence under the two-period rule, else the q-value."""
+    return r.decision.evidence if _two_period(r) else r.q_value
+
+
 def render_overview(job: str, results: Sequence[StoredResult]) -> str:
     """Metrics x periods: one row per stored period, one column per metric, the q-value
     in each cell with * where the metric differs and ! where a watched check fails.
@@ -767,24 +776,31 @@ def render_overview(job: str, results: Sequence[StoredResult]) -> str:
     level = {r.period: r.judged_at for r in results}
     levels = set(level.values())
     one = next(iter(levels)) if len(levels) == 1 and None not in levels else None
+    two = [r.result.decision.level for r in results
+           if _two_period(r.result) and math.isfinite(r.result.decision.level)]
     rows = []
     for p in periods:
-        row = [p] if one is not None else [p, "?" if level[p] is None else f"{level[p]:g}"]
+        row = [p] if one is not None or two else [p, "?" if level[p] is None else f"{level[p]:g}"]
         for m in metrics:
             r = cell.get((m, p))
-            row.append("." if r is None else _p(r.result.q_value) + _marks(r.result))
+            row.append("." if r is None else _p(_shown_value(r.result)) + _marks(r.result))
         n_sig = sum(1 for m in metrics if (m, p) in cell and cell[(m, p)].result.significant)
         row.append(str(n_sig) if n_sig else "")
         rows.append(row)
-    if one is not None:
-        judged = f"* differs (q <= {one:g}) at the level stored with every period"
+    if two:  # the stored verdicts and levels: a budget changed later does not re-judge them
+        shown = f"{min(two):.2g}" if min(two) == max(two) else f"{min(two):.2g} to {max(two):.2g}"
+        legend = (f"evidence by period (this period with the one before); * differs (at or below the stored "
+                  f"level, {shown}), ! a watched assumption check fails, . not stored")
     else:
-        judged = ("* differs (q at or below the level its period was judged at, column level; "
-                  "? a period stored without its settings: its stored verdict)")
-    legend = f"q-value by period; {judged}, ! a watched assumption check fails, . not stored"
+        if one is not None:
+            judged = f"* differs (q <= {one:g}) at the level stored with every period"
+        else:
+            judged = ("* differs (q at or below the level its period was judged at, column level; "
+                      "? a period stored without its settings: its stored verdict)")
+        legend = f"q-value by period; {judged}, ! a watched assumption check fails, . not stored"
     foot = (f"\n{len(periods)} periods, {periods[0]} to {periods[-1]}. One metric segment by segment: "
             "--metric NAME; everything: --json.\n") if periods else ""
-    head = ["period"] + ([] if one is not None else ["level"])
+    head = ["period"] + ([] if one is not None or two else ["level"])
     return (f"{job}: {legend}\n\n"
             + _grid([*head, *metrics, "differ"], rows, right=range(len(head), len(head) + len(metrics) + 1)) + foot)
 

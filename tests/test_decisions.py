@@ -9,8 +9,7 @@ Each rule has a test that fails on the per-period rule of earlier releases
 
 from __future__ import annotations
 
-import math
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
