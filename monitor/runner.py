@@ -188,7 +188,7 @@ class Job:
                 break
             gap.append(p)
             if len(gap) > MAX_COMPUTED_FIRST:
-                log.warning("job %s: %d periods before %s were never completed; they are not computed first "
+                log.info("job %s: %d periods before %s were never completed; they are not computed first "
                             "(backfill them): %s is judged alone", self.config.job, len(gap), period.ident,
                             period.ident)
                 return []

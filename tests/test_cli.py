@@ -369,11 +369,11 @@ def _metric(segments, df, method="anova"):
 
 
 def test_long_flag_lists_show_the_furthest_segments_then_plus_n_more():
-    from monitor.cli import TOP_SEGMENTS, _metric_row
+    from monitor.cli import METRIC_HEADER, TOP_SEGMENTS, _metric_row
 
     segs = [{"segment": f"s{i:02d}", "n": 10, "mean": 50.0 + (i if i < 25 else 0),
              "flag": "high" if i < 25 else None} for i in range(50)]
-    cell = _metric_row(_metric(segs, [49, 1_000_000]))[7]
+    cell = _metric_row(_metric(segs, [49, 1_000_000]))[METRIC_HEADER.index("stands apart")]
     assert cell.endswith(f"+{25 - TOP_SEGMENTS} more")
     assert cell.split(", ")[0] == "s24 ▲"  # the furthest from the overall mean first
     assert cell.count("▲") == TOP_SEGMENTS

@@ -342,7 +342,7 @@ def test_objects_are_frozen_and_hashable(tmp_path):
         pytest.param(
             {"metrics": [{"column": "b", "tset": "anova"}]},
             "metrics[0].tset: unknown key; did you mean 'test'? (given: 'tset'; accepted: column, name, test, "
-            "reference, transform, unit, decimals, min_effect, label, adjust_for)",
+            "reference, transform, unit, decimals, min_effect, label, adjust_for, min_difference)",
             id="metric-key"),
         pytest.param(
             {"metrics": [{"name": "b"}]},
@@ -351,7 +351,8 @@ def test_objects_are_frozen_and_hashable(tmp_path):
         pytest.param(
             {"metrics": ["a", 7]},
             "metrics[1]: must be a mapping, not a whole number (given: 7; accepted: a column name, or a mapping "
-            "with column and optional name, test, reference, transform, unit, decimals, min_effect, label, adjust_for)",
+            "with column and optional name, test, reference, transform, unit, decimals, min_effect, label, adjust_for, "
+            "min_difference)",
             id="metric-number"),
         pytest.param(
             {"metrics": ["dwell_hours", {"column": "dwell_hours", "transform": "log"}]},

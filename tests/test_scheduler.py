@@ -230,7 +230,9 @@ def test_tick_catches_up_after_downtime_and_then_owes_nothing(tmp_path):
 
 
 def test_look_back_recompute_that_changes_nothing_sends_nothing(tmp_path):
-    root = _project(tmp_path, lookback=2).parent
+    # the per-period rule: a late correction that takes a difference back shows in its own week
+    # (the two-period rule would wait for a second quiet week before clearing)
+    root = _project(tmp_path, lookback=2, extra="decision: {rule: per_period}\n").parent
     cfg = load_config(root / "job.yaml")
     clock = FixedClock(datetime(2026, 3, 16, 6, tzinfo=UTC))
     with Job(cfg, clock=clock) as job:
