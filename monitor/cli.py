@@ -16,7 +16,7 @@ import sys
 import traceback
 from datetime import datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Mapping, Sequence, TextIO
+from typing import TYPE_CHECKING, Any, Sequence, TextIO
 
 from . import __version__, methods
 from .errors import EXIT_BUSY, EXIT_EMPTY, EXIT_FAILED, SegwatchError, UsageError
