@@ -439,7 +439,9 @@ def test_history_tables(toy: Path, capsys):
     assert main(["history", str(toy)]) == 0
     text = capsys.readouterr().out
     lines = text.splitlines()
-    assert lines[0].startswith("hubs: q-value by period; * differs (q <= 0.05)")
+    # the default two-period rule: each cell the stored evidence, judged at its stored level
+    assert lines[0].startswith("hubs: evidence by period (this period with the one before); * differs (at or "
+                               "below the stored level, ")
     header = lines[2].split()
     assert header == ["period", "cost", "dwell", "wait", "differ"]
     with Job(load_config(toy)) as job:

@@ -106,7 +106,7 @@ def test_each_run_records_its_settings_whole_and_reads_them_back(tmp_path: Path)
 
 def test_stored_settings_from_another_release_read_back_tolerantly():
     s = RunSettings.of(load_config_text(0.05), version="1.0")
-    later = {**s.to_json(), "decision": {"rule": "two-period", "budget": 0.5}}  # a key added by a later release
+    later = {**s.to_json(), "escalation": {"after": 3, "to": "pager"}}  # a key added by a later release
     assert RunSettings.from_json(later) == s
     earlier = {k: v for k, v in s.to_json().items() if k not in ("confirm", "rule", "pairs", "metrics")}
     back = RunSettings.from_json(earlier)
