@@ -380,3 +380,69 @@ def test_zero_one_metric_with_a_segment_without_late_parcels_on_sqlite(tmp_path:
     assert "test of homogeneity of proportions" in html
     assert re.search(r"Cohen(&#x27;|&#39;|')s w 0\.\d\d", html)
     assert "χ²(3) = " in html
+
+
+# ---------------------------------------------------------------- pushed down on every engine
+
+
+@pytest.mark.parametrize("engine", ["sqlite", "duckdb", "postgresql", "mariadb"])
+def test_zero_one_columns_recognised_from_pushed_down_sums_on_every_engine(engine, tmp_path):
+    """A 0/1 column stored as a float, a NUMERIC and an INTEGER: the database's sums alone make it
+    a proportions metric, with the chi-square of the counts (reference: scipy chi2_contingency)."""
+    import uuid
+
+    import sqlalchemy as sa
+
+    from monitor.periods import parse_period
+    from monitor.source import Source
+    from tests.test_engines import bulk_insert, make_target
+
+    target = make_target(engine, tmp_path)
+    try:
+        name = f"ontime_{uuid.uuid4().hex[:8]}"
+        md = sa.MetaData(schema=target.schema)
+        table = sa.Table(name, md, sa.Column("id", sa.Integer, primary_key=True, autoincrement=False),
+                         sa.Column("ts", sa.DateTime), sa.Column("seg", sa.String(20)),
+                         sa.Column("ok", sa.Double), sa.Column("okn", sa.Numeric(1, 0)), sa.Column("oki", sa.Integer))
+        if hasattr(target, "made"):
+            target.made.append(name)
+        rng = np.random.default_rng(41)
+        rows, counts = [], {}
+        for seg, n, p in (("A", 70, 0.93), ("B", 120, 0.9), ("C", 45, 1.0), ("D", 90, 0.78)):
+            v = (rng.random(n) < p).astype(int)
+            counts[seg] = (int(v.sum()), n)
+            for x in v:
+                ts = datetime(2026, 3, 2) + timedelta(minutes=int(rng.integers(0, 7 * 24 * 60)))
+                rows.append({"id": len(rows) + 1, "ts": ts, "seg": seg, "ok": float(x), "okn": int(x), "oki": int(x)})
+        with target.admin.begin() as conn:
+            md.create_all(conn)
+            if engine == "sqlite":
+                conn.execute(table.insert(), rows)
+            else:
+                bulk_insert(conn, table, rows)
+        if engine == "duckdb":
+            target.admin.dispose()
+        cfg = parse_config({
+            "job": "ontime", "period": "week", "timezone": "UTC",
+            "source": {"url": target.url, "table": target.qualified(name), "time_column": "ts",
+                       "segment_column": "seg", "naive_time": "utc"},
+            "metrics": [{"column": "ok"}, {"column": "okn"}, {"column": "oki"}],
+            "sampling": {"mode": "sample", "cap": 20},  # the values travel as a sample only
+            "history": {"url": f"sqlite:///{tmp_path / 'h.sqlite'}"},
+        }, tmp_path / "ontime.yaml", environ={})
+        src = Source(cfg)
+        try:
+            data = src.fetch(parse_period("week", "2026-W10", "UTC"))
+        finally:
+            src.dispose()
+        assert data.compute == "pushdown"
+        results = analyse_period(data.metrics, cfg)
+    finally:
+        target.close()
+    x = [counts[s][0] for s in "ABCD"]
+    n = [counts[s][1] for s in "ABCD"]
+    chi2, p, _, _ = sps.chi2_contingency(np.array([x, np.subtract(n, x)]).T, correction=False)
+    for r in results:
+        assert r.method == "proportions", r.metric
+        assert r.statistic == pytest.approx(chi2, rel=1e-9) and r.p_value == pytest.approx(p, rel=1e-7)
+        assert [s.n for s in r.segments] == n
