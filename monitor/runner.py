@@ -39,6 +39,7 @@ from .store.history import History, iso_utc
 from .store.ledger import LEASE_SECONDS, Claim, Ledger, LedgerEntry
 from .model import Event, MetricResult, RunSettings
 from .periods import Period, latest_complete, parse_period, period_range
+from .redact import one_line
 from .source import Source
 
 log = logging.getLogger(__name__)
@@ -319,12 +320,15 @@ class Job:
         elif isinstance(exc, KeyboardInterrupt):
             reason = "interrupted"
         else:
-            reason = f"unexpected {type(exc).__name__}: {exc}"
+            reason = f"unexpected {type(exc).__name__}: {one_line(exc)}"
         try:
             self.ledger.fail(claim, reason)
         except Exception as err:  # noqa: BLE001 - the original error is what the caller sees
-            log.error("job %s: could not record the failure of %s in the history: %s",
-                      self.config.job, claim.resource, err)
+            # the history is unreachable: the failure is recorded (with its time) and the lease
+            # given back as soon as it answers again; until then this process treats the lease as its own
+            self.ledger.owe_failure(claim, reason)
+            log.info("job %s: could not record the failure of %s in the history (%s); it is recorded when "
+                     "the history answers again", self.config.job, claim.resource, err)
             return
         log.info("job %s: %s failed and is recorded as failed: %s", self.config.job, claim.resource, reason)
         if isinstance(exc, Exception):

@@ -68,11 +68,14 @@ from apscheduler.schedulers.background import BackgroundScheduler
 from apscheduler.triggers.cron import CronTrigger
 from apscheduler.triggers.interval import IntervalTrigger
 
+from sqlalchemy.exc import SQLAlchemyError
+
 from .delivery.relay import RelayOutcome
 from .clock import Clock, SystemClock
 from .config import JobConfig
-from .errors import PeriodBusy, PeriodError, UsageError
+from .errors import HistoryError, PeriodBusy, PeriodError, UsageError
 from .model import Event
+from .redact import one_line, redact
 from .store.history import utc_aware
 from .store.ledger import LEASE_SECONDS, LedgerEntry
 from .periods import Period, latest_complete, parse_period
@@ -199,11 +202,20 @@ def tick(job: Job, now: datetime | None = None, *, stop: threading.Event | None 
     """
     cfg = job.config
     now = now or job.clock.now()
-    due = due_periods(cfg, ledger_state(job), now, new=not sweep, lookback=not sweep, respect_backoff=sweep)
-    if due:
-        log.info("job %s: %s due: %s", cfg.job, "retries" if sweep else "periods",
-                 ", ".join(f"{d.period.ident} ({d.reason})" for d in due))
-    job.ledger.register([d.period.ident for d in due if d.reason != "look-back"])
+    try:
+        job.ledger.settle_owed()  # what an outage of the history left unrecorded
+        due = due_periods(cfg, ledger_state(job), now, new=not sweep, lookback=not sweep, respect_backoff=sweep)
+        if due:
+            log.info("job %s: %s due: %s", cfg.job, "retries" if sweep else "periods",
+                     ", ".join(f"{d.period.ident} ({d.reason})" for d in due))
+        job.ledger.register([d.period.ident for d in due if d.reason != "look-back"])
+    except (HistoryError, SQLAlchemyError) as exc:
+        # the history is unreachable: nothing can start; the outage is stored once it answers again
+        reason = str(exc) if isinstance(exc, HistoryError) else (
+            f"cannot read the ledger of job {cfg.job} in the history at {redact(job.history.url)}: {one_line(exc)}")
+        job.ledger.owe_outage(reason)
+        log.error("job %s: %s; the next tick tries again", cfg.job, reason)
+        return TickReport(cfg.job, now, (), failed=("", reason))
     computed: list[str] = []
     skipped: list[str] = []
     busy = failed = None

@@ -186,6 +186,11 @@ class Ledger:
         self.clock = clock
         self.lease = timedelta(seconds=lease_seconds)
         self.op_channels = tuple(op_channels)
+        # what could not be written while the history was unreachable (see :meth:`owe_failure`)
+        self._owed: dict[str, tuple[Claim, str, datetime]] = {}
+        self._outage: tuple[datetime, datetime, int, str] | None = None  # first, last, count, reason
+        self._mine: set[str] = set()  # owners of leases of ours that could not be released
+        self._owed_lock = threading.Lock()
 
     # -------------------------------------------------------------- reads
 
@@ -235,6 +240,7 @@ class Ledger:
         same transaction. Never raises for a lease held by someone else: see
         :attr:`Claim.won`.
         """
+        self.settle_owed()
         now = self.clock.now()
         owner = new_owner()
         until = now + self.lease
@@ -254,6 +260,15 @@ class Ledger:
                 if held is None:  # released between our insert and our read: try again
                     continue
                 held_until = utc_aware(held.expires_at)
+                if held.owner in self._mine:  # our own, left behind by an outage: free for us
+                    taken = conn.execute(sa.update(leases_t).where(*where, leases_t.c.owner == held.owner).values(
+                        owner=owner, acquired_at=row["acquired_at"], expires_at=row["expires_at"]))
+                    if taken.rowcount != 1:
+                        continue
+                    self._mine.discard(held.owner)
+                    log.info("job %s: reclaimed our own lease on %s (%s), left behind while the history was "
+                             "unreachable", self.job, resource, held.owner)
+                    return Claim(self.job, resource, True, owner, until, entry=entry)
                 if held_until > now and not owner_gone(held.owner):
                     return Claim(self.job, resource, False, held.owner, held_until, entry=entry)
                 reason = "expired" if held_until <= now else "owner process gone"
@@ -299,16 +314,28 @@ class Ledger:
         return n == 1
 
     def release(self, claim: Claim) -> None:
-        """Give the lease back (a no-op when it is no longer ours)."""
-        with self._write(f"release the lease on {claim.resource}") as conn:
-            conn.execute(sa.delete(leases_t).where(
-                leases_t.c.job == self.job, leases_t.c.resource == claim.resource, leases_t.c.owner == claim.owner))
+        """Give the lease back (a no-op when it is no longer ours). When the history cannot
+        be reached, the lease is remembered as ours: the next claim of this ledger takes it
+        back at once instead of waiting for it to expire."""
+        try:
+            with self._write(f"release the lease on {claim.resource}") as conn:
+                conn.execute(sa.delete(leases_t).where(
+                    leases_t.c.job == self.job, leases_t.c.resource == claim.resource,
+                    leases_t.c.owner == claim.owner))
+        except HistoryError:
+            self._mine.add(claim.owner)
+            raise
 
-    def fail(self, claim: Claim, error: str) -> LedgerEntry | None:
+    def fail(self, claim: Claim, error: str, at: datetime | None = None) -> LedgerEntry | None:
         """Record a failed attempt: ledger ``failed`` with the reason and the next retry time,
-        lease released, and ``op_run_failed`` stored — in one transaction (``error`` redacted)."""
+        lease released, and ``op_run_failed`` stored — in one transaction (``error`` redacted).
+
+        ``at`` is when the attempt failed (default now): a failure recorded late, after an
+        outage of the history (:meth:`settle_owed`), keeps its own time. The ledger row is
+        only marked when it is still this attempt's (``running`` under our owner).
+        """
         error = redact(error)
-        now = self.clock.now()
+        now = at or self.clock.now()
         naive = _utc_naive(now)
         with self._write(f"record the failure of period {claim.resource}") as conn:
             found = conn.execute(sa.select(ledger_t).where(
@@ -317,7 +344,7 @@ class Ledger:
             retry_at = now + retry_delay(attempts)
             conn.execute(sa.update(ledger_t).where(
                 ledger_t.c.job == self.job, ledger_t.c.period == claim.resource,
-                ledger_t.c.owner == claim.owner).values(
+                ledger_t.c.state == "running", ledger_t.c.owner == claim.owner).values(
                 state="failed", last_error=error, finished_at=naive, next_attempt_at=_utc_naive(retry_at)))
             conn.execute(sa.delete(leases_t).where(
                 leases_t.c.job == self.job, leases_t.c.resource == claim.resource, leases_t.c.owner == claim.owner))
@@ -329,6 +356,56 @@ class Ledger:
             after = conn.execute(sa.select(ledger_t).where(
                 ledger_t.c.job == self.job, ledger_t.c.period == claim.resource)).mappings().one_or_none()
         return _entry(after) if after else None
+
+    # -------------------------------------------------------------- outages of the history
+
+    def owe_failure(self, claim: Claim, error: str) -> None:
+        """Remember a failure that could not be recorded (the history was unreachable), and
+        that the claim's lease is still ours; :meth:`settle_owed` records it later with the
+        time it happened, and the next claim treats the lease as free."""
+        with self._owed_lock:
+            self._owed[claim.resource] = (claim, error, self.clock.now())
+            self._mine.add(claim.owner)
+
+    def owe_outage(self, error: str) -> None:
+        """Remember that the history could not be reached at all (a scheduled tick could not
+        read the ledger); one ``op_run_failed`` for the whole outage is stored once it is back."""
+        now = self.clock.now()
+        with self._owed_lock:
+            first, _, count, _ = self._outage or (now, now, 0, error)
+            self._outage = (first, now, count + 1, redact(error))
+
+    @property
+    def owed(self) -> int:
+        """How many failure records wait for the history to be reachable again."""
+        return len(self._owed) + (self._outage is not None)
+
+    def settle_owed(self) -> int:
+        """Write what an outage of the history left unwritten: each owed failure (ledger
+        ``failed`` at the time it happened, its lease released, ``op_run_failed``) and one
+        ``op_run_failed`` for an outage that stopped whole ticks. Returns how many were
+        written; raises :class:`HistoryError` while the history is still unreachable (what
+        is left stays owed)."""
+        done = 0
+        with self._owed_lock:
+            for resource, (claim, error, at) in list(self._owed.items()):
+                self.fail(claim, error, at=at)
+                del self._owed[resource]
+                self._mine.discard(claim.owner)
+                log.info("job %s: the failure of %s at %s is now recorded in the history", self.job, resource,
+                         iso_utc(at))
+                done += 1
+            if self._outage is not None:
+                first, last, count, error = self._outage
+                self.history.record_op(None, Event(
+                    "op_run_failed", None, None,
+                    f"The history could not be reached from {iso_utc(first)} to {iso_utc(last)} "
+                    f"({count} scheduled run{'s' if count != 1 else ''} could not start): {error}",
+                    {"error": error, "first_failure": iso_utc(first), "last_failure": iso_utc(last),
+                     "runs": count}, subject=f"outage {iso_utc(first)}"), self.op_channels, first)
+                self._outage = None
+                done += 1
+        return done
 
     def finish_empty(self, claim: Claim, start: datetime, end: datetime) -> None:
         """The source had no rows: mark the period done with a note, keep any earlier results,
