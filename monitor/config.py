@@ -99,6 +99,8 @@ class SourceConfig:
     segment_column: str
     naive_time: str = "local"
     file: str | None = None  # source.file: the CSV/Parquet file behind ``query`` (DuckDB in memory)
+    #: Seconds one source statement may run before the engine stops it (``source.timeout``).
+    timeout: float = 300.0
 
     @property
     def display_url(self) -> str:
@@ -417,10 +419,14 @@ _TOP_KEYS = ("job", "source", "period", "timezone", "metrics", "fdr", "history",
              "scheduling", "report", "decision")
 _DECISION_KEYS = ("rule", "false_alarms_per_year", "check_alarms_per_year", "weight_now", "clear_above",
                   "quiet_periods")
-_SOURCE_KEYS = ("url", "table", "query", "file", "time_column", "segment_column", "naive_time")
+_SOURCE_KEYS = ("url", "table", "query", "file", "time_column", "segment_column", "naive_time", "timeout")
 #: source.file: how DuckDB reads each kind of file (the name's ending, lowercase).
 FILE_READERS = {".csv": "read_csv_auto", ".tsv": "read_csv_auto", ".csv.gz": "read_csv_auto",
                 ".tsv.gz": "read_csv_auto", ".parquet": "read_parquet"}
+#: ``source.timeout`` when not given: five minutes per statement.
+SOURCE_TIMEOUT_SECONDS = 300.0
+_TIMEOUT_MAX_SECONDS = 7 * 86400.0
+_DURATION = re.compile(r"P(?:(\d+)D)?(?:T(?=\d)(?:(\d+)H)?(?:(\d+)M)?(?:(\d+(?:\.\d+)?)S)?)?", re.IGNORECASE)
 _METRIC_KEYS = ("column", "name", "test", "reference", "transform", "unit", "decimals", "min_effect", "label",
                 "adjust_for", "min_difference")
 
@@ -547,7 +553,7 @@ def _source(r: _Reader, top: dict) -> SourceConfig:
         r.fail("source.segment_column", "is the same column as source.time_column", segment_column,
                "a column other than the time column")
     naive_time = r.choice(src, "naive_time", "source", NAIVE_TIME, "naive_time", default="local")
-    return SourceConfig(url, table, query, time_column, segment_column, naive_time, file)
+    return SourceConfig(url, table, query, time_column, segment_column, naive_time, file, _timeout(r, src))
 
 
 def _file_source(r: _Reader, src: dict) -> tuple[str, None, str, str]:
@@ -576,9 +582,59 @@ def _file_source(r: _Reader, src: dict) -> tuple[str, None, str, str]:
     return "duckdb:///:memory:", None, f"SELECT * FROM {FILE_READERS[ending]}('{literal}')", str(path)
 
 
+def _timeout(r: _Reader, src: dict) -> float:
+    """``source.timeout``: seconds (a number) or an ISO 8601 duration (``PT5M``, ``PT90S``, ``PT1H``)."""
+    accepted = (f"seconds from 0.1 to {_TIMEOUT_MAX_SECONDS:.0f}, or an ISO 8601 duration such as PT5M "
+                "(default PT5M)")
+    value = src.get("timeout")
+    if isinstance(value, str) and "${" in value:
+        value = r.expand(value, "source.timeout").strip()
+        try:
+            value = float(value)
+        except ValueError:
+            pass
+    if isinstance(value, str):
+        match = _DURATION.fullmatch(value.strip())
+        if match is None or value.strip().upper() in ("P", "PT"):
+            r.fail("source.timeout", "is not a number of seconds or an ISO 8601 duration", value, accepted)
+        days, hours, minutes, seconds = (float(x) if x else 0.0 for x in match.groups())
+        value = ((days * 24 + hours) * 60 + minutes) * 60 + seconds
+    return r.number({"timeout": value} if value is not None else {}, "timeout", "source",
+                    lambda x: 0.1 <= x <= _TIMEOUT_MAX_SECONDS, accepted, default=SOURCE_TIMEOUT_SECONDS)
+
+
 def _select(r: _Reader, sql: str) -> str:
-    """Check that ``sql`` is one SELECT/WITH statement; return it without trailing ``;`` and comments."""
+    """Check that ``sql`` is one SELECT/WITH statement; return it without trailing ``;`` and comments.
+
+    Quoted strings and identifiers, PostgreSQL's dollar-quoted strings (``$$...$$``,
+    ``$tag$...$tag$``) and comments are skipped when looking for a ``;``. A backslash
+    escapes a quote in MySQL/MariaDB strings but not in standard SQL, so the text is read
+    both ways and refused if either reading finds a second statement. (The source is also
+    read in a read-only session: this check is for clear messages, not the only guard.)
+    """
     accepted = "one SELECT or WITH ... SELECT statement"
+    first = last = None
+    for backslash in (False, True):
+        first_b, last_b, semicolons = _scan_sql(sql, backslash)
+        if first_b is None:
+            r.fail("source.query", "holds no SQL statement", sql, accepted)
+        inner = [p for p in semicolons if p < last_b]
+        if inner:
+            r.fail("source.query", f"holds more than one statement (a ';' at character {inner[0] + 1})", sql,
+                   accepted)
+        if not backslash:
+            first, last = first_b, last_b
+    keyword = re.match(r"[(\s]*([A-Za-z]+)", sql[first:])
+    if keyword is None or keyword.group(1).lower() not in ("select", "with"):
+        r.fail("source.query", "must be a SELECT statement (or WITH ... SELECT)", sql, accepted)
+    return sql[: last + 1]
+
+
+_DOLLAR_TAG = re.compile(r"\$(?:[A-Za-z_][A-Za-z0-9_]*)?\$")
+
+
+def _scan_sql(sql: str, backslash: bool) -> tuple[int | None, int | None, list[int]]:
+    """The first and last characters of ``sql`` outside comments, and where its ``;`` are."""
     first = last = None
     semicolons: list[int] = []
     i, n = 0, len(sql)
@@ -592,9 +648,24 @@ def _select(r: _Reader, sql: str) -> str:
             i = n if end < 0 else end + 2
             continue
         ch = sql[i]
+        tag = _DOLLAR_TAG.match(sql, i) if ch == "$" else None
+        if tag is not None and (i == 0 or not (sql[i - 1].isalnum() or sql[i - 1] in "_$")):
+            end = sql.find(tag.group(0), tag.end())  # a dollar-quoted string runs to the same tag
+            first = i if first is None else first
+            last = i = n - 1 if end < 0 else end + len(tag.group(0)) - 1
+            i += 1
+            continue
         if ch in "'\"`":  # a quoted string or identifier; a doubled quote stays inside
             end = i + 1
             while True:
+                while backslash and ch == "'" and end < n:
+                    hit = sql.find(ch, end)
+                    if hit < 0:
+                        break
+                    slashes = len(sql[end:hit]) - len(sql[end:hit].rstrip("\\"))
+                    if slashes % 2 == 0:
+                        break
+                    end = hit + 1
                 end = sql.find(ch, end)
                 if end < 0 or not sql.startswith(ch * 2, end):
                     break
@@ -609,15 +680,7 @@ def _select(r: _Reader, sql: str) -> str:
             first = i if first is None else first
             last = i
         i += 1
-    if first is None:
-        r.fail("source.query", "holds no SQL statement", sql, accepted)
-    inner = [p for p in semicolons if p < last]
-    if inner:
-        r.fail("source.query", f"holds more than one statement (a ';' at character {inner[0] + 1})", sql, accepted)
-    keyword = re.match(r"[(\s]*([A-Za-z]+)", sql[first:])
-    if keyword is None or keyword.group(1).lower() not in ("select", "with"):
-        r.fail("source.query", "must be a SELECT statement (or WITH ... SELECT)", sql, accepted)
-    return sql[: last + 1]
+    return first, last, semicolons
 
 
 def _timezone(r: _Reader, top: dict) -> str:

@@ -232,3 +232,220 @@ def test_a_lease_whose_release_failed_is_taken_back_by_its_own_process(tmp_path,
     other = Ledger(history, clock).claim("2026-W11")
     assert not other.won and other.owner == again.owner
     assert [e["kind"] for e in history.events()] == []
+
+
+# ------------------------------------------------------------------ items 6 and 7: a source that hangs or writes
+
+
+def _pg_source(admin: sa.Engine, schema: str) -> None:
+    """The parcels of :func:`_source_db` in a PostgreSQL schema, plus an ``audit`` table and a
+    function ``wipe()`` that empties it (what a hostile or careless ``query:`` could call)."""
+    rng = np.random.default_rng(5)
+    with admin.connect() as c:
+        c.execute(sa.text(f'SET search_path TO "{schema}"'))
+        c.execute(sa.text("CREATE TABLE parcels (ts timestamptz, hub text, dwell double precision)"))
+        c.execute(sa.text("CREATE TABLE audit (id int)"))
+        c.execute(sa.text("INSERT INTO audit SELECT generate_series(1, 5)"))
+        c.execute(sa.text("CREATE FUNCTION wipe() RETURNS int LANGUAGE plpgsql AS "
+                          "$$ BEGIN DELETE FROM audit; RETURN 0; END $$"))
+        rows = [{"ts": datetime(2026, 3, 9, 12, tzinfo=timezone.utc) + timedelta(hours=int(h)), "hub": hub,
+                 "dwell": float(rng.normal(20, 2))} for hub in "ABC" for h in rng.integers(0, 120, 20)]
+        c.execute(sa.text("INSERT INTO parcels VALUES (:ts, :hub, :dwell)"), rows)
+
+
+def _pg_job(root: Path, schema: str, source: str, timeout: str = "") -> Path:
+    url = f"postgresql+psycopg://postgres@127.0.0.1:5432/test?options=-csearch_path%3D{schema}"
+    cfg = root / "job.yaml"
+    cfg.write_text(
+        f"job: hubs\nsource:\n  url: '{url}'\n{source}  time_column: ts\n  segment_column: hub\n{timeout}"
+        "period: week\ntimezone: UTC\nmetrics:\n  - column: dwell\n    test: kruskal\n"
+        "history: {url: 'sqlite:///state/h.sqlite'}\n")
+    return cfg
+
+
+def _ledger(root: Path) -> list[tuple]:
+    con = sqlite3.connect(root / "state" / "h.sqlite")
+    try:
+        return con.execute("SELECT period, state, last_error FROM sw_ledger").fetchall()
+    finally:
+        con.close()
+
+
+def test_a_query_blocked_by_another_sessions_lock_stops_at_source_timeout(tmp_path, pg_schema, capsys):
+    from monitor.cli import main
+
+    admin, schema = pg_schema
+    _pg_source(admin, schema)
+    cfg = _pg_job(tmp_path, schema, "  table: parcels\n", "  timeout: 1\n")
+    locker_engine = sa.create_engine(PG)
+    locker = locker_engine.connect()
+    tx = locker.begin()
+    locker.execute(sa.text(f'LOCK TABLE "{schema}".parcels IN ACCESS EXCLUSIVE MODE'))
+    # a safety net, not the check: if no timeout stopped the query, the lock goes after 120 s and the run succeeds
+    guard = threading.Timer(120, tx.rollback)
+    guard.start()
+    try:
+        code = main(["run", str(cfg), "--period", "2026-W11"])
+    finally:
+        guard.cancel()
+        if tx.is_active:
+            tx.rollback()
+        locker.close()
+        locker_engine.dispose()
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 1
+    assert len(err) == 1 and err[0].startswith("Error: ") and "source.timeout" in err[0]
+    assert "ran longer than 1 s" in err[0] and "statement_timeout" in err[0] and str(cfg) in err[0]
+    ((period, state, error),) = _ledger(tmp_path)
+    assert (period, state) == ("2026-W11", "failed") and "source.timeout" in error
+    # once the lock is gone, the same period runs
+    assert main(["run", str(cfg), "--period", "2026-W11"]) == 0
+
+
+def test_a_query_source_calling_a_writing_function_fails_and_deletes_nothing(tmp_path, pg_schema, capsys):
+    from monitor.cli import main
+
+    admin, schema = pg_schema
+    _pg_source(admin, schema)
+    cfg = _pg_job(tmp_path, schema, "  query: SELECT o.*, wipe() AS w FROM parcels o\n")
+    code = main(["run", str(cfg), "--period", "2026-W11"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 1 and len(err) == 1
+    assert "tried to change the database" in err[0] and "read-only" in err[0]
+    assert "cannot execute DELETE in a read-only transaction" in err[0]
+    assert _rows(admin, schema, "SELECT count(*) FROM audit") == [(5,)]
+
+
+def test_dollar_quotes_and_backslashes_cannot_hide_a_second_statement(tmp_path):
+    from monitor.errors import ConfigError
+
+    def load(query: str):
+        cfg = tmp_path / "q.yaml"
+        cfg.write_text("source:\n  url: sqlite:///x.sqlite\n  query: " + __import__("json").dumps(query) +
+                       "\n  time_column: ts\n  segment_column: hub\nperiod: week\ntimezone: UTC\n"
+                       "metrics:\n  - column: dwell\n")
+        return load_config(cfg)
+
+    for hidden in ("SELECT $$'$$ AS a; DELETE FROM audit; SELECT $$'$$ AS b",
+                   "SELECT $t$'$t$ AS a; DELETE FROM audit; SELECT $t$'$t$ AS b",
+                   "SELECT 'x\\'; DELETE FROM audit; SELECT ''' AS b"):
+        with pytest.raises(ConfigError, match=r"source\.query: holds more than one statement"):
+            load(hidden)
+    # a ';' inside a dollar-quoted string, or a '$' inside a name, is one statement
+    assert load("SELECT $$a;b$$ AS s, ts, hub, dwell FROM t").source.query.endswith("FROM t")
+    assert load("SELECT a$b, ts FROM t;").source.query == "SELECT a$b, ts FROM t"
+
+
+def test_source_timeout_is_read_as_seconds_or_an_iso_duration(tmp_path):
+    from monitor.errors import ConfigError
+
+    def timeout(text: str):
+        cfg = tmp_path / "t.yaml"
+        cfg.write_text("source:\n  url: sqlite:///x.sqlite\n  table: t\n  time_column: ts\n  segment_column: hub\n"
+                       f"{text}period: week\ntimezone: UTC\nmetrics:\n  - column: dwell\n")
+        return load_config(cfg).source.timeout
+
+    assert timeout("") == 300.0
+    assert timeout("  timeout: 2.5\n") == 2.5
+    assert timeout("  timeout: PT15M\n") == 900.0
+    assert timeout("  timeout: PT1H30S\n") == 3630.0
+    with pytest.raises(ConfigError, match=r"t\.yaml: source\.timeout: is not a number of seconds or an ISO 8601 "
+                                          r"duration \(given: '15 minutes'"):
+        timeout("  timeout: 15 minutes\n")
+    with pytest.raises(ConfigError, match=r"source\.timeout: is out of range \(given: 0;"):
+        timeout("  timeout: 0\n")
+
+
+def _sqlite_source(tmp_path: Path, timeout: float):
+    from monitor.source import Source
+
+    cfg = _config(tmp_path, f"sqlite:///{tmp_path / 'h.sqlite'}", "")
+    text = cfg.read_text().replace("  segment_column: hub\n", f"  segment_column: hub\n  timeout: {timeout}\n")
+    cfg.write_text(text)
+    return Source(load_config(cfg))
+
+
+def test_sqlite_source_sessions_are_read_only_and_bounded(tmp_path):
+    from monitor.errors import SourceError
+
+    source = _sqlite_source(tmp_path, 0.5)
+    try:
+        with source.engine.connect() as conn:
+            with pytest.raises(SourceError, match="tried to change the database and SQLite refused it"):
+                conn.execute(sa.text("DELETE FROM parcels"))
+                conn.commit()
+        with source.engine.connect() as conn:
+            # a recursive query that would count to 10**10; stopped by the progress handler's deadline
+            slow = ("WITH RECURSIVE c(x) AS (SELECT 1 UNION ALL SELECT x + 1 FROM c WHERE x < 10000000000) "
+                    "SELECT count(*) FROM c")
+            with pytest.raises(SourceError, match=r"source\.timeout: a source query ran longer than 0\.5 s and "
+                                                  "SQLite stopped it"):
+                conn.execute(sa.text(slow)).all()
+            # the connection stays usable and a quick statement is not stopped by an old deadline
+            assert conn.execute(sa.text("SELECT count(*) FROM parcels")).scalar() == 150
+    finally:
+        source.dispose()
+    con = sqlite3.connect(tmp_path / "src.sqlite")
+    assert con.execute("SELECT count(*) FROM parcels").fetchone() == (150,)
+    con.close()
+
+
+def test_duckdb_source_is_read_only_and_bounded(tmp_path):
+    pytest.importorskip("duckdb_engine")
+    import duckdb
+
+    from monitor.engines import SourceSession, create_engine
+    from monitor.errors import SourceError
+
+    path = tmp_path / "src.duckdb"
+    con = duckdb.connect(str(path))
+    con.execute("CREATE TABLE parcels AS SELECT range AS id FROM range(10)")
+    con.close()
+    engine = create_engine(f"duckdb:///{path}", "source", read_only=True, session=SourceSession(0.5, "d.yaml"))
+    try:
+        with engine.connect() as conn:
+            with pytest.raises(SourceError, match="tried to change the database and DuckDB refused it"):
+                conn.execute(sa.text("DELETE FROM parcels"))
+        with engine.connect() as conn:
+            slow = "SELECT count(*) FROM range(100000000000) a WHERE md5(a.range::varchar) = 'x'"
+            with pytest.raises(SourceError, match=r"source\.timeout: a source query ran longer than 0\.5 s and "
+                                                  "DuckDB stopped it"):
+                conn.execute(sa.text(slow)).all()
+            conn.rollback()
+            assert conn.execute(sa.text("SELECT count(*) FROM parcels")).scalar() == 10
+    finally:
+        engine.dispose()
+
+
+def test_mariadb_source_sessions_are_read_only_and_bounded():
+    pytest.importorskip("pymysql")
+    from monitor.engines import SourceSession, create_engine
+    from monitor.errors import SourceError
+
+    admin = sa.create_engine("mysql+pymysql://root@127.0.0.1:3306/test")
+    table = f"sw_fault_{uuid.uuid4().hex[:8]}"
+    try:
+        with admin.begin() as c:
+            c.execute(sa.text(f"CREATE TABLE {table} (id int)"))
+            c.execute(sa.text(f"INSERT INTO {table} VALUES (1), (2)"))
+    except sa.exc.OperationalError as exc:
+        pytest.skip(f"MariaDB not reachable at 127.0.0.1:3306: {' '.join(str(exc).split())[:120]}")
+    engine = create_engine("mysql+pymysql://root@127.0.0.1:3306/test", "source",
+                           session=SourceSession(0.5, "m.yaml"))
+    try:
+        with engine.connect() as conn:
+            with pytest.raises(SourceError, match="tried to change the database and the MariaDB/MySQL server "
+                                                  "refused it .*READ ONLY transaction"):
+                conn.execute(sa.text(f"DELETE FROM {table}"))
+        with engine.connect() as conn:
+            flavour = conn.execute(sa.text("SELECT version()")).scalar()
+            if "mariadb" in flavour.lower():
+                slow = "SELECT sum(a.seq * b.seq) FROM seq_1_to_100000 a, seq_1_to_100000 b"
+                with pytest.raises(SourceError, match=r"source\.timeout: .* MariaDB stopped it \(max_statement_time"):
+                    conn.execute(sa.text(slow)).all()
+    finally:
+        engine.dispose()
+        with admin.begin() as c:
+            assert c.execute(sa.text(f"SELECT count(*) FROM {table}")).scalar() == 2
+            c.execute(sa.text(f"DROP TABLE {table}"))
+        admin.dispose()

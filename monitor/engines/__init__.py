@@ -10,6 +10,7 @@ from . import duckdb, generic, mysql, postgresql, spark, sqlite  # noqa: F401 - 
 from .base import (
     Engine,
     EngineTraits,
+    SourceSession,
     check_server_version,
     create_engine,
     for_dialect,
@@ -25,6 +26,6 @@ from .base import (
 )
 
 __all__ = [
-    "Engine", "EngineTraits", "check_server_version", "create_engine", "for_dialect", "format_version", "get",
+    "Engine", "EngineTraits", "SourceSession", "check_server_version", "create_engine", "for_dialect", "format_version", "get",
     "hash_array", "names", "one_line", "redact", "register", "server_version", "to_double",
 ]

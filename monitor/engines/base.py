@@ -56,6 +56,7 @@ hooks it needs) ending in ``register(MyEngine())``, one import line in
 from __future__ import annotations
 
 import logging
+import weakref
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from decimal import Decimal
@@ -78,6 +79,31 @@ log = logging.getLogger(__name__)
 
 #: What an engine is opened for: reading the job's source, or writing segwatch's history.
 ROLES = ("source", "history")
+
+
+@dataclass(frozen=True)
+class SourceSession:
+    """How a source's sessions are guarded: read-only, and each statement stopped after
+    ``timeout`` seconds. ``where`` names the config file for messages (``<file>: source.timeout``)."""
+
+    timeout: float | None = None
+    where: str = "source"
+
+    def timeout_text(self) -> str:
+        t = self.timeout or 0.0
+        return f"{t:g} s" if t < 120 else f"{t / 60:g} min"
+
+    def timed_out(self, engine: str, how: str) -> SourceError:
+        return SourceError(
+            f"{self.where}: source.timeout: a source query ran longer than {self.timeout_text()} and {engine} "
+            f"stopped it ({how}); another session may hold a lock on the table, or the query needs more time: "
+            "find what blocks it, or raise source.timeout (seconds or an ISO 8601 duration such as PT15M)")
+
+    def refused_write(self, engine: str, detail: str) -> SourceError:
+        return SourceError(
+            f"{self.where}: source: the source query tried to change the database and {engine} refused it "
+            f"({detail}); segwatch reads the source in a read-only session: give a query (or call functions) "
+            "that only read")
 
 
 def format_version(version: tuple[int, ...] | None) -> str:
@@ -287,6 +313,49 @@ class Engine:
 
             sa.event.listen(engine, "connect", _on_connect)
 
+    # -------------------------------------------------------------- source sessions
+
+    def guard_source(self, engine: sa.Engine, session: SourceSession) -> None:
+        """Make every source session read-only and bound each statement by ``session.timeout``.
+
+        By default: :meth:`source_session_statements` on every new connection (then a
+        commit, so the settings are the session's own), and :meth:`translate_error` turning
+        the engine's timeout and read-only refusals into one-line :class:`SourceError` messages.
+        Engines that cannot do either leave the hooks alone (and say so in docs/engines.md).
+        """
+        def _on_connect(dbapi_conn: Any, _record: Any) -> None:
+            statements = list(self.source_session_statements(dbapi_conn, session))
+            if not statements:
+                return
+            cursor = dbapi_conn.cursor()
+            try:
+                for statement in statements:
+                    cursor.execute(statement)
+            finally:
+                cursor.close()
+            dbapi_conn.commit()
+
+        sa.event.listen(engine, "connect", _on_connect)
+        self.listen_errors(engine, session)
+
+    def listen_errors(self, engine: sa.Engine, session: SourceSession) -> None:
+        """Raise :meth:`translate_error`'s answer instead of the driver's error, where it has one."""
+        def _on_error(context: Any) -> None:
+            better = self.translate_error(context.original_exception, session)
+            if better is not None:
+                raise better from context.original_exception
+
+        sa.event.listen(engine, "handle_error", _on_error)
+
+    def source_session_statements(self, dbapi_conn: Any, session: SourceSession) -> Sequence[str]:
+        """Statements that make a new source session read-only and set its statement timeout."""
+        return ()
+
+    def translate_error(self, exc: BaseException, session: SourceSession) -> SourceError | None:
+        """A one-line error for a statement the engine stopped (timeout) or refused (a write in a
+        read-only session); None for anything else."""
+        return None
+
     # -------------------------------------------------------------- versions
 
     def flavour(self, dialect: sa.engine.Dialect) -> str:
@@ -434,8 +503,12 @@ def names() -> tuple[str, ...]:
 # ------------------------------------------------------------------ the factory
 
 
-def create_engine(url: str, role: str = "source", *, read_only: bool = False) -> sa.Engine:
+def create_engine(url: str, role: str = "source", *, read_only: bool = False,
+                  session: SourceSession | None = None) -> sa.Engine:
     """A SQLAlchemy engine for ``url``, opened for ``role`` (``source`` or ``history``).
+
+    A ``session`` (source role only) makes every connection read-only and bounds each
+    statement by its timeout, as the engine module can (:meth:`Engine.guard_source`).
 
     The engine module of the URL's backend gives the options (pre-ping and recycling;
     DuckDB files read-only and without a pool for a source), does what must come
@@ -465,7 +538,18 @@ def create_engine(url: str, role: str = "source", *, read_only: bool = False) ->
             raise HistoryError(f"history.url: cannot open {redact(url)}: {one_line(exc)}") from exc
         raise SourceError(f"cannot open database URL {redact(url)}: {one_line(exc)}") from exc
     kind.prepare(engine, role)
+    if session is not None and role == "source":
+        kind.guard_source(engine, session)
+        _SESSIONS[engine] = session
     return engine
+
+
+_SESSIONS: "weakref.WeakKeyDictionary[sa.Engine, SourceSession]" = weakref.WeakKeyDictionary()
+
+
+def session_of(conn: sa.Connection) -> SourceSession | None:
+    """The :class:`SourceSession` a source connection was opened with (None: unguarded)."""
+    return _SESSIONS.get(conn.engine)
 
 
 # ------------------------------------------------------------------ versions

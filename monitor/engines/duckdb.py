@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import math
 import re
+import threading
 from typing import TYPE_CHECKING, Any, Iterable, Sequence
 
 import sqlalchemy as sa
@@ -14,7 +15,9 @@ from sqlalchemy.ext.compiler import compiles
 from sqlalchemy.sql.base import Executable
 from sqlalchemy.sql.elements import ClauseElement
 
-from .base import Engine, hash_array, key_text, register
+from ..errors import SourceError
+from ..redact import one_line
+from .base import Engine, SourceSession, hash_array, key_text, register
 
 if TYPE_CHECKING:
     import numpy as np
@@ -33,6 +36,7 @@ DUCKDB_MEMORY_PER_COLUMN_MB = 1.5
 #: The temporary table that holds the values while they are read column by column.
 DUCKDB_VALUES_TABLE = "segwatch_values"
 _URL_LIMITS = {"memory_limit", "max_memory"}
+_TIMER = "segwatch_timer"
 
 
 class DuckDBEngine(Engine):
@@ -94,6 +98,43 @@ class DuckDBEngine(Engine):
         match = re.match(r"v?(\d+)\.(\d+)(?:\.(\d+))?", text)
         return self.name, tuple(int(x) for x in match.groups() if x is not None) if match else None
 
+    # -------------------------------------------------------------- source sessions
+
+    def guard_source(self, engine: sa.Engine, session: SourceSession) -> None:
+        """A source file is opened read-only already (:meth:`engine_options`; an in-memory
+        database keeps nothing). DuckDB has no statement timeout of its own: a timer per
+        statement calls the connection's ``interrupt()`` once ``source.timeout`` has passed."""
+        timeout = session.timeout
+        if timeout:
+            def _start(conn: sa.Connection, *_args: Any) -> None:
+                _stop(conn)
+                timer = threading.Timer(timeout, _interrupt, args=(conn.connection.driver_connection,))
+                timer.daemon = True
+                conn.info[_TIMER] = timer
+                timer.start()
+
+            def _stop(conn: sa.Connection, *_args: Any) -> None:
+                timer = conn.info.pop(_TIMER, None)
+                if timer is not None:
+                    timer.cancel()
+
+            def _stop_on_error(context: Any) -> None:
+                if context.connection is not None:
+                    _stop(context.connection)
+
+            sa.event.listen(engine, "before_cursor_execute", _start)
+            sa.event.listen(engine, "after_cursor_execute", _stop)
+            sa.event.listen(engine, "handle_error", _stop_on_error)
+        self.listen_errors(engine, session)
+
+    def translate_error(self, exc: BaseException, session: SourceSession) -> SourceError | None:
+        text = str(exc)
+        if type(exc).__name__ == "InterruptException" or text.startswith("INTERRUPT Error"):
+            return session.timed_out("DuckDB", "interrupted by segwatch's timer")
+        if "read-only mode" in text:
+            return session.refused_write("DuckDB", one_line(exc))
+        return None
+
     # -------------------------------------------------------------- reflection
 
     def reflect_table(self, conn: sa.Connection, name: str, schema: str | None) -> sa.Table:
@@ -153,6 +194,13 @@ class DuckDBEngine(Engine):
             return ("DuckDB ran out of the memory segwatch allows it; set a larger limit in the URL, "
                     "e.g. duckdb:///file.duckdb?memory_limit=1GB")
         return None
+
+
+def _interrupt(driver: Any) -> None:
+    try:
+        driver.interrupt()
+    except Exception:  # noqa: BLE001 - the connection closed meanwhile: nothing to stop
+        pass
 
 
 def _is_file(url: sa.URL) -> bool:

@@ -3,12 +3,18 @@
 
 from __future__ import annotations
 
-from typing import Any, Mapping
+from typing import Any, Mapping, Sequence
 
 import sqlalchemy as sa
 from sqlalchemy.ext.compiler import compiles
 
-from .base import Engine, register, to_double
+from ..errors import SourceError
+from ..redact import one_line
+from .base import Engine, SourceSession, register, to_double
+
+#: Server error codes: MariaDB's max_statement_time, MySQL's max_execution_time, and a
+#: write in a read-only transaction (both).
+_MARIADB_TIMEOUT, _MYSQL_TIMEOUT, _READ_ONLY = 1969, 3024, 1792
 
 #: Decimals are summed exactly up to these digits after / before the point, so that
 #: fourth powers of the shifted values stay inside the server's 65-81 digit decimals.
@@ -42,6 +48,33 @@ class MySQLEngine(Engine):
 
     def insert_missing(self, conn: sa.Connection, table: sa.Table, row: Mapping[str, Any]) -> bool:
         return conn.execute(sa.insert(table).values(**row).prefix_with("IGNORE")).rowcount == 1
+
+    # -------------------------------------------------------------- source sessions
+
+    def source_session_statements(self, dbapi_conn: Any, session: SourceSession) -> Sequence[str]:
+        """Every transaction of the session read-only (``SET SESSION TRANSACTION READ ONLY``:
+        a stored function called by the query cannot write either), and the statement
+        timeout: MariaDB's ``max_statement_time`` (seconds), MySQL's ``max_execution_time``
+        (milliseconds, SELECT statements)."""
+        out = ["SET SESSION TRANSACTION READ ONLY"]
+        if session.timeout:
+            info = getattr(dbapi_conn, "get_server_info", None)
+            if "mariadb" in str(info() if callable(info) else "").lower():
+                out.append(f"SET SESSION max_statement_time = {session.timeout:g}")
+            else:
+                out.append(f"SET SESSION max_execution_time = {max(1, round(session.timeout * 1000))}")
+        return out
+
+    def translate_error(self, exc: BaseException, session: SourceSession) -> SourceError | None:
+        args = getattr(exc, "args", ())
+        code = args[0] if args and isinstance(args[0], int) else None
+        if code == _MARIADB_TIMEOUT:
+            return session.timed_out("MariaDB", "max_statement_time")
+        if code == _MYSQL_TIMEOUT:
+            return session.timed_out("MySQL", "max_execution_time")
+        if code == _READ_ONLY:
+            return session.refused_write("the MariaDB/MySQL server", one_line(exc))
+        return None
 
 
 @compiles(to_double, "mysql")

@@ -8,7 +8,8 @@ from typing import TYPE_CHECKING, Any, Mapping, Sequence
 import sqlalchemy as sa
 
 from ..errors import SourceError
-from .base import Engine, key_text, register
+from ..redact import one_line
+from .base import Engine, SourceSession, key_text, register, session_of
 
 if TYPE_CHECKING:
     import numpy as np
@@ -57,6 +58,25 @@ class PostgreSQLEngine(Engine):
         version = getattr(conn.dialect, "server_version_info", None) or (0,)
         if version >= (11,):
             conn.exec_driver_sql("SET LOCAL jit = off")
+
+    # -------------------------------------------------------------- source sessions
+
+    def source_session_statements(self, dbapi_conn: Any, session: SourceSession) -> Sequence[str]:
+        """Every transaction of the session read-only (a function called by a query cannot
+        write either: PostgreSQL refuses the write), and ``statement_timeout`` in milliseconds
+        (a wait for another session's lock counts)."""
+        out = ["SET SESSION CHARACTERISTICS AS TRANSACTION READ ONLY"]
+        if session.timeout:
+            out.append(f"SET statement_timeout = {max(1, round(session.timeout * 1000))}")
+        return out
+
+    def translate_error(self, exc: BaseException, session: SourceSession) -> SourceError | None:
+        state = getattr(exc, "sqlstate", None)
+        if state == "57014" and "statement timeout" in str(exc):  # query_canceled by statement_timeout
+            return session.timed_out("PostgreSQL", "statement_timeout")
+        if state == "25006":  # read_only_sql_transaction
+            return session.refused_write("PostgreSQL", one_line(exc))
+        return None
 
     # -------------------------------------------------------------- binary COPY
 
@@ -132,6 +152,12 @@ class PostgreSQLEngine(Engine):
                     if size >= COPY_BLOCK_BYTES:
                         parse()
             parse()
+        except Exception as exc:
+            session = session_of(conn)
+            better = self.translate_error(exc, session) if session is not None else None
+            if better is not None:  # the COPY runs on the driver's cursor, outside SQLAlchemy's error events
+                raise better from exc
+            raise
         finally:
             cursor.close()
         if bytes(buf) not in (b"\xff\xff", b""):

@@ -7,6 +7,7 @@ import hashlib
 import logging
 import math
 import sqlite3
+import time
 from datetime import datetime
 from pathlib import Path
 from typing import Any, Mapping
@@ -14,8 +15,13 @@ from urllib.parse import quote
 
 import sqlalchemy as sa
 
-from ..errors import HistoryError
-from .base import Engine, register
+from ..errors import HistoryError, SourceError
+from ..redact import one_line
+from .base import Engine, SourceSession, register
+
+#: SQLite VM instructions between two looks at the statement's deadline.
+PROGRESS_STEPS = 20_000
+_DEADLINE = "segwatch_deadline"
 
 log = logging.getLogger(__name__)
 
@@ -104,6 +110,46 @@ class SQLiteEngine(Engine):
 
         sa.event.listen(engine, "connect", _on_connect)
         sa.event.listen(engine, "begin", _on_begin)
+
+    # -------------------------------------------------------------- source sessions
+
+    def guard_source(self, engine: sa.Engine, session: SourceSession) -> None:
+        """``PRAGMA query_only`` on every source connection (no statement may change the
+        file, whatever a query calls), and the timeout as a progress handler: each statement
+        gets a deadline when it starts, and SQLite's VM stops it (``interrupted``) once the
+        deadline has passed."""
+        timeout = session.timeout
+
+        def _on_connect(dbapi_conn: Any, record: Any) -> None:
+            dbapi_conn.execute("PRAGMA query_only = ON")
+            if timeout:
+                info = record.info
+
+                def _past_deadline() -> int:
+                    deadline = info.get(_DEADLINE)
+                    return int(deadline is not None and time.monotonic() > deadline)
+
+                dbapi_conn.set_progress_handler(_past_deadline, PROGRESS_STEPS)
+
+        def _on_execute(conn: sa.Connection, *_args: Any) -> None:
+            conn.connection.info[_DEADLINE] = time.monotonic() + timeout
+
+        def _on_checkout(_dbapi_conn: Any, record: Any, _proxy: Any) -> None:
+            record.info.pop(_DEADLINE, None)
+
+        sa.event.listen(engine, "connect", _on_connect)
+        if timeout:
+            sa.event.listen(engine, "before_cursor_execute", _on_execute)
+            sa.event.listen(engine.pool, "checkout", _on_checkout)
+        self.listen_errors(engine, session)
+
+    def translate_error(self, exc: BaseException, session: SourceSession) -> SourceError | None:
+        text = str(exc).lower()
+        if isinstance(exc, sqlite3.OperationalError) and text.startswith("interrupted"):
+            return session.timed_out("SQLite", "interrupted by segwatch's progress handler")
+        if isinstance(exc, sqlite3.OperationalError) and "readonly database" in text:
+            return session.refused_write("SQLite", one_line(exc) + ", PRAGMA query_only")
+        return None
 
     # -------------------------------------------------------------- versions
 

@@ -112,8 +112,12 @@ class Source:
         self.job = job
         self.cfg: SourceConfig = job.source
         try:
-            self.engine = engine or engines.create_engine(self.cfg.url, "source", read_only=True)
+            self.engine = engine or engines.create_engine(
+                self.cfg.url, "source", read_only=True,
+                session=engines.SourceSession(self.cfg.timeout, str(job.path)))
         except SegwatchError as exc:  # name the job file too
+            if str(exc).startswith(f"{job.path}:"):
+                raise
             raise type(exc)(f"{job.path}: {exc}") from exc
         #: What differs on this database engine (monitor.engines).
         self.backend = engines.for_dialect(self.engine.dialect)
