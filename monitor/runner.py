@@ -32,7 +32,7 @@ from .delivery.relay import RELAY_WAIT_SECONDS, RelayOutcome, build_sinks, chann
 from .analysis import analyse_period, load_statistics_in_background
 from .clock import Clock, SystemClock
 from .config import JobConfig, config_hash
-from .errors import LeaseLost, PeriodBusy, PeriodError, SegwatchError
+from .errors import ConfigError, LeaseLost, PeriodBusy, PeriodError, SegwatchError
 from .decisions import decide_period, previous_state
 from .events import Baseline, derive_events, lookback
 from .store.history import History, iso_utc
@@ -246,6 +246,15 @@ class Job:
             with self.ledger.heartbeat(claim):
                 report = self._compute(period, claim, deliver)
         except LeaseLost:
+            raise
+        except ConfigError:
+            # the config is wrong (found only now: a column that is not there, a URL no driver
+            # opens); the period did not fail: its ledger row is put back as it was
+            try:
+                self.ledger.abandon(claim)
+            except Exception as err:  # noqa: BLE001 - the config error is what the caller sees
+                self.ledger.owe_failure(claim, "the configuration could not be used")
+                log.info("job %s: could not put back the ledger row of %s: %s", cfg.job, period.ident, err)
             raise
         except BaseException as exc:
             self._failed(claim, exc)

@@ -449,3 +449,35 @@ def test_mariadb_source_sessions_are_read_only_and_bounded():
             assert c.execute(sa.text(f"SELECT count(*) FROM {table}")).scalar() == 2
             c.execute(sa.text(f"DROP TABLE {table}"))
         admin.dispose()
+
+
+# ------------------------------------------------------------------ low: config faults found at run time
+
+
+def test_config_faults_found_at_run_time_leave_a_done_period_done(tmp_path, capsys):
+    from monitor.cli import main
+
+    cfg = _config(tmp_path, "sqlite:///state/h.sqlite")
+    assert main(["run", str(cfg), "--period", "2026-W10"]) == 0
+    good = cfg.read_text()
+    capsys.readouterr()
+    cases = [
+        (good.replace("column: dwell", "column: dwel"),
+         f"Error: {cfg}: metrics[0].column: no column 'dwel' in the source (columns there: ts, hub, dwell)"),
+        (good.replace("sqlite:///src.sqlite", "nosuchdb://u:pw@h/x"),
+         f"Error: {cfg}: source.url: no SQLAlchemy dialect or driver for 'nosuchdb' (nosuchdb://u:***@h/x)"),
+    ]
+    for text, message in cases:
+        cfg.write_text(text)
+        for period in ("2026-W10", "2026-W11"):  # a done period and one never run
+            assert main(["run", str(cfg), "--period", period]) == 2
+            err = capsys.readouterr().err.strip().splitlines()
+            assert len(err) == 1 and err[0].startswith(message), err
+    con = sqlite3.connect(tmp_path / "state" / "h.sqlite")
+    try:
+        assert con.execute("SELECT period, state, attempts, last_error FROM sw_ledger").fetchall() == [
+            ("2026-W10", "done", 1, None)]
+        assert con.execute("SELECT count(*) FROM sw_leases").fetchone() == (0,)
+        assert con.execute("SELECT count(*) FROM sw_events WHERE kind LIKE 'op%'").fetchone() == (0,)
+    finally:
+        con.close()

@@ -67,7 +67,7 @@ from sqlalchemy.exc import NoSuchTableError, SQLAlchemyError
 from sqlalchemy.ext.compiler import compiles
 from sqlalchemy.sql.functions import FunctionElement
 
-from ..errors import HistoryError, SourceError
+from ..errors import ConfigError, HistoryError, SourceError
 from ..redact import one_line, redact  # noqa: F401 - the one rule (monitor.redact), re-exported
 
 if TYPE_CHECKING:
@@ -534,6 +534,11 @@ def create_engine(url: str, role: str = "source", *, read_only: bool = False,
     try:
         engine = sa.create_engine(url, **kind.engine_options(parsed, role, read_only))
     except (SQLAlchemyError, ImportError, ValueError) as exc:
+        if session is not None and isinstance(exc, sa.exc.NoSuchModuleError):
+            raise ConfigError(
+                f"{session.where}: source.url: no SQLAlchemy dialect or driver for {parsed.drivername!r} "
+                f"({redact(url)}): {one_line(exc)}; check the URL's scheme, or install the driver "
+                "(pip install 'segwatch[engines]' brings PostgreSQL, MariaDB/MySQL and DuckDB)") from exc
         if role == "history":
             raise HistoryError(f"history.url: cannot open {redact(url)}: {one_line(exc)}") from exc
         raise SourceError(f"cannot open database URL {redact(url)}: {one_line(exc)}") from exc

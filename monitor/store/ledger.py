@@ -357,6 +357,24 @@ class Ledger:
                 ledger_t.c.job == self.job, ledger_t.c.period == claim.resource)).mappings().one_or_none()
         return _entry(after) if after else None
 
+    def abandon(self, claim: Claim) -> None:
+        """Undo an attempt that never touched the period: the ledger row goes back to what it
+        was when claimed (a ``done`` period stays done), and the lease is released. For a
+        fault of the configuration found at run time (a column that is not there, a URL
+        no driver opens): the period did not fail, the config did."""
+        before = claim.entry
+        where = (ledger_t.c.job == self.job, ledger_t.c.period == claim.resource, ledger_t.c.owner == claim.owner)
+        with self._write(f"put back the ledger row of period {claim.resource}") as conn:
+            if before is None:
+                conn.execute(sa.delete(ledger_t).where(*where))
+            else:
+                conn.execute(sa.update(ledger_t).where(*where).values(
+                    state=before.state, attempts=before.attempts, last_error=before.last_error, note=before.note,
+                    owner=before.owner, started_at=_naive(before.started_at), finished_at=_naive(before.finished_at),
+                    next_attempt_at=_naive(before.next_attempt_at)))
+            conn.execute(sa.delete(leases_t).where(
+                leases_t.c.job == self.job, leases_t.c.resource == claim.resource, leases_t.c.owner == claim.owner))
+
     # -------------------------------------------------------------- outages of the history
 
     def owe_failure(self, claim: Claim, error: str) -> None:
@@ -466,6 +484,10 @@ class Ledger:
         except SQLAlchemyError as exc:
             raise HistoryError(f"cannot {what} of job {self.job} in the history at "
                                f"{redact(self.history.url)}: {one_line(exc)}") from exc
+
+
+def _naive(dt: datetime | None) -> datetime | None:
+    return None if dt is None else _utc_naive(dt)
 
 
 def _what(resource: str) -> str:
