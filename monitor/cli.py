@@ -320,10 +320,11 @@ def cmd_backfill(args: argparse.Namespace, out: TextIO) -> int:
         periods = job.periods(args.first, args.last)
         bar = Progress(len(periods)) if sys.stderr.isatty() and not args.json and not args.quiet else None
         reports = []
-        for i, p in enumerate(periods):
-            if bar:
-                bar.update(i, p.ident)
-            report = job.run(p)
+        if bar and periods:
+            bar.update(0, periods[0].ident)
+        for i, report in enumerate(job.backfill_runs(periods)):
+            if bar and i + 1 < len(periods):
+                bar.update(i + 1, periods[i + 1].ident)
             reports.append(report)
             if args.json:
                 out.write(json.dumps(report.to_json(args.pairs)) + "\n")

@@ -26,7 +26,7 @@ from __future__ import annotations
 import logging
 from dataclasses import dataclass, replace
 from datetime import timedelta
-from typing import Any, Callable, Iterable
+from typing import Any, Callable, Iterable, Iterator, Sequence
 
 from .delivery.relay import RELAY_WAIT_SECONDS, RelayOutcome, build_sinks, channel_kinds, op_channels, relay
 from .analysis import analyse_period, load_statistics_in_background
@@ -149,10 +149,20 @@ class Job:
         return period
 
     def periods(self, first: str, last: str) -> list[Period]:
-        """Every period from ``first`` to ``last``; refuses a range that reaches past today."""
+        """Every period from ``first`` to ``last``; refuses a range that reaches a period that
+        has not ended yet by the clock (a backfill computes complete periods only: an open
+        one would be stored from part of its records; ``run --period`` can compute it)."""
         found = period_range(self.config.period, first, last, self.config.timezone)
         if found:
             self._refuse_future(found[-1], f"--to {found[-1].ident}")
+            now = self.clock.now()
+            if found[-1].end_utc > now:
+                latest = latest_complete(self.config.period, now, self.config.timezone)
+                end = found[-1].end
+                raise PeriodError(f"--to {found[-1].ident}: that period of job {self.config.job} has not ended yet "
+                                  f"(it ends {end:%Y-%m-%d %H:%M} {end.tzinfo}); a backfill computes complete "
+                                  f"periods only: the latest is {latest.ident} (run --period {found[-1].ident} "
+                                  "computes the open one)")
         return found
 
     def _refuse_future(self, period: Period, what: str) -> None:
@@ -197,7 +207,8 @@ class Job:
         return gap[::-1]
 
     def run(self, period: Period | str | None = None, *, only_if_owed: bool = False, store: bool = True,
-            deliver: bool | None = None, fill: bool = True) -> PeriodReport | None:
+            deliver: bool | None = None, fill: bool = True,
+            announce_empty: bool = True) -> PeriodReport | None:
         """Compute one period, store it (replacing an earlier run of it) and deliver its alerts.
 
         Raises :class:`~monitor.errors.PeriodBusy` when another process holds the
@@ -209,6 +220,8 @@ class Job:
         outbox -- and sends nothing, so a config can be tried safely. ``deliver=False``
         with ``store=True`` stores the results and leaves their alerts pending in the
         outbox (``segwatch alerts --retry`` or the next run sends them).
+        ``announce_empty=False`` stores no ``op_period_empty`` for a period without rows
+        (a backfill announces a stretch of them once: :meth:`backfill_runs`).
         """
         if deliver is None:
             deliver = store
@@ -244,7 +257,7 @@ class Job:
             log.info("job %s: computing %s [%s, %s) (attempt %d)", cfg.job, period.ident, period.start,
                      period.end, entry.attempts)
             with self.ledger.heartbeat(claim):
-                report = self._compute(period, claim, deliver)
+                report = self._compute(period, claim, deliver, announce_empty)
         except LeaseLost:
             raise
         except ConfigError:
@@ -292,7 +305,8 @@ class Job:
             return []
         return self.history.recent(period, lookback(self.config.confirm))
 
-    def _compute(self, period: Period, claim: Claim, deliver: bool = True) -> PeriodReport:
+    def _compute(self, period: Period, claim: Claim, deliver: bool = True,
+                 announce_empty: bool = True) -> PeriodReport:
         cfg = self.config
         # a server computes the sums while this process waits: load scipy meanwhile
         loading = load_statistics_in_background() if self.source.remote else None
@@ -300,7 +314,7 @@ class Job:
         if loading is not None:
             loading.join()
         if data.rows == 0:
-            self.ledger.finish_empty(claim, period.start, period.end)
+            self.ledger.finish_empty(claim, period.start, period.end, announce=announce_empty)
             outcome = self.deliver() if deliver else RelayOutcome()
             note = "the source had no rows in this period; nothing was stored"
             log.info("job %s: %s skipped: %s", cfg.job, period.ident, note)
@@ -354,16 +368,56 @@ class Job:
 
     def backfill(self, first: str, last: str,
                  progress: Callable[[int, int, Period], None] | None = None) -> list[PeriodReport]:
-        """Run every period from ``first`` to ``last``, oldest first."""
+        """Run every period from ``first`` to ``last``, oldest first (:meth:`backfill_runs`)."""
         periods = self.periods(first, last)
         reports = []
-        for i, p in enumerate(periods):
-            if progress:
-                progress(i, len(periods), p)
-            reports.append(self.run(p))
+        if progress and periods:
+            progress(0, len(periods), periods[0])
+        for i, report in enumerate(self.backfill_runs(periods)):
+            reports.append(report)
+            if progress and i + 1 < len(periods):
+                progress(i + 1, len(periods), periods[i + 1])
         if progress and periods:
             progress(len(periods), len(periods), periods[-1])
         return reports
+
+    def backfill_runs(self, periods: Sequence[Period]) -> Iterator[PeriodReport]:
+        """Run ``periods`` oldest first, yielding each report as it is done. A stretch of
+        periods without rows (years before the source's first record) is announced as one
+        ``op_period_empty`` when it ends, not one per period."""
+        stretch: list[Period] = []
+        try:
+            for p in periods:
+                report = self.run(p, announce_empty=False)
+                if report.rows == 0:
+                    stretch.append(p)
+                else:
+                    self._announce_empty(stretch)
+                    stretch = []
+                yield report
+        finally:
+            self._announce_empty(stretch)
+
+    def _announce_empty(self, stretch: Sequence[Period]) -> None:
+        """One ``op_period_empty`` for consecutive periods without rows (never raises)."""
+        if not stretch:
+            return
+        first, last = stretch[0], stretch[-1]
+        if len(stretch) == 1:
+            text = (f"Period {first.ident} was skipped: the source had no rows from {first.start.isoformat()} "
+                    f"to {first.end.isoformat()}.")
+        else:
+            text = (f"Periods {first.ident} to {last.ident} ({len(stretch)} periods) were skipped: the source had "
+                    f"no rows from {first.start.isoformat()} to {last.end.isoformat()}.")
+        event = Event("op_period_empty", None, None, text,
+                      {"start": first.start.isoformat(), "end": last.end.isoformat(), "periods": len(stretch),
+                       "first": first.ident, "last": last.ident},
+                      subject="" if len(stretch) == 1 else f"{first.ident}..{last.ident}")
+        try:
+            self.ledger.record(first.ident, event)
+        except Exception as err:  # noqa: BLE001 - the ledger already says each period is done and empty
+            log.warning("job %s: could not record the empty periods %s to %s: %s", self.config.job, first.ident,
+                        last.ident, err)
 
     def close(self) -> None:
         if self._source is not None:

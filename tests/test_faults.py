@@ -481,3 +481,31 @@ def test_config_faults_found_at_run_time_leave_a_done_period_done(tmp_path, caps
         assert con.execute("SELECT count(*) FROM sw_events WHERE kind LIKE 'op%'").fetchone() == (0,)
     finally:
         con.close()
+
+
+# ------------------------------------------------------------------ low: backfill far back and past the clock
+
+
+def test_a_backfill_announces_a_stretch_without_rows_once_and_refuses_open_periods(tmp_path):
+    import json
+
+    from monitor.errors import PeriodError
+
+    cfg = load_config(_config(tmp_path, "sqlite:///state/h.sqlite"))
+    with Job(cfg, clock=FixedClock(datetime(2026, 3, 18, 12, tzinfo=timezone.utc))) as job:  # inside 2026-W12
+        with pytest.raises(PeriodError, match=r"--to 2026-W12: that period of job hubs has not ended yet"):
+            job.backfill("2026-W10", "2026-W12")
+        with pytest.raises(PeriodError, match=r"--to 2031-W01: that period of job hubs has not started yet"):
+            job.backfill("2026-W10", "2031-W01")
+        assert job.ledger.entries() == {}  # refused before anything ran
+        reports = job.backfill("2024-W01", "2026-W11")
+        assert [r.period.ident for r in reports if r.rows] == ["2026-W10", "2026-W11"]
+        empty = [r.period.ident for r in reports if not r.rows]
+        assert len(empty) == len(reports) - 2 and empty[0] == "2024-W01" and empty[-1] == "2026-W09"
+        entries = job.ledger.entries()
+        assert all(entries[p].state == "done" and entries[p].note for p in empty)
+        ops = [e for e in job.history.events() if e["kind"].startswith("op_")]
+    assert [(e["kind"], e["period"]) for e in ops] == [("op_period_empty", "2024-W01")]
+    assert f"Periods 2024-W01 to 2026-W09 ({len(empty)} periods) were skipped" in ops[0]["message"]
+    lines = [json.loads(x) for x in (tmp_path / "logs" / "alerts.jsonl").read_text().splitlines()]
+    assert [x["kind"] for x in lines].count("op_period_empty") == 1

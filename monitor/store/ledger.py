@@ -425,15 +425,17 @@ class Ledger:
                 done += 1
         return done
 
-    def finish_empty(self, claim: Claim, start: datetime, end: datetime) -> None:
+    def finish_empty(self, claim: Claim, start: datetime, end: datetime, announce: bool = True) -> None:
         """The source had no rows: mark the period done with a note, keep any earlier results,
-        release the lease and store ``op_period_empty`` — in one transaction."""
+        release the lease and (with ``announce``) store ``op_period_empty`` — in one transaction."""
         from .history import finish_period
 
         now = self.clock.now()
         note = "skipped: the source had no rows in the window"
         with self._write(f"record the empty period {claim.resource}") as conn:
             finish_period(conn, self.job, claim.resource, claim.owner, now, note=note)
+            if not announce:
+                return
             insert_op(conn, self.job, claim.resource, Event(
                 "op_period_empty", None, None,
                 f"Period {claim.resource} was skipped: the source had no rows from {start.isoformat()} "
