@@ -454,6 +454,12 @@ class Engine:
         result = conn.execute(stmt.execution_options(yield_per=chunk))
         return None, result.partitions()
 
+    def is_overflow(self, exc: BaseException) -> bool:
+        """Whether a failed push-down query overflowed double precision (an engine that raises
+        instead of giving infinity, such as PostgreSQL's sums of squares past ~1e154): the
+        period is then read row by row (``compute: local``)."""
+        return False
+
     def failure_hint(self, exc: BaseException) -> str | None:
         """A few words on what to do about a failed push-down query (None: the general hint)."""
         return None

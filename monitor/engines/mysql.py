@@ -14,7 +14,7 @@ from .base import Engine, SourceSession, register, to_double
 
 #: Server error codes: MariaDB's max_statement_time, MySQL's max_execution_time, and a
 #: write in a read-only transaction (both).
-_MARIADB_TIMEOUT, _MYSQL_TIMEOUT, _READ_ONLY = 1969, 3024, 1792
+_MARIADB_TIMEOUT, _MYSQL_TIMEOUT, _READ_ONLY, _OUT_OF_RANGE = 1969, 3024, 1792, 1690
 
 #: Decimals are summed exactly up to these digits after / before the point, so that
 #: fourth powers of the shifted values stay inside the server's 65-81 digit decimals.
@@ -64,6 +64,10 @@ class MySQLEngine(Engine):
             else:
                 out.append(f"SET SESSION max_execution_time = {max(1, round(session.timeout * 1000))}")
         return out
+
+    def is_overflow(self, exc: BaseException) -> bool:
+        args = getattr(getattr(exc, "orig", exc), "args", ())
+        return bool(args) and args[0] == _OUT_OF_RANGE  # "DOUBLE value is out of range"
 
     def translate_error(self, exc: BaseException, session: SourceSession) -> SourceError | None:
         args = getattr(exc, "args", ())

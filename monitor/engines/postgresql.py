@@ -70,6 +70,10 @@ class PostgreSQLEngine(Engine):
             out.append(f"SET statement_timeout = {max(1, round(session.timeout * 1000))}")
         return out
 
+    def is_overflow(self, exc: BaseException) -> bool:
+        # numeric_value_out_of_range: float8 aggregates (even avg keeps a sum of squares) raise on overflow
+        return getattr(getattr(exc, "orig", exc), "sqlstate", None) == "22003"
+
     def translate_error(self, exc: BaseException, session: SourceSession) -> SourceError | None:
         state = getattr(exc, "sqlstate", None)
         if state == "57014" and "statement timeout" in str(exc):  # query_canceled by statement_timeout

@@ -770,12 +770,25 @@ def _summary(row: Mapping[str, Any], p: MetricPlan, n_rows: int, shift: Shift,
         s1 = _exact_sum((1, row[f"s1h_{i}"]), (1, row[f"s1l_{i}"]))
         s2 = _exact_sum((1, row[f"s2h_{i}"]), (2, row[f"s2m_{i}"]), (1, row[f"s2l_{i}"]))
     sums = [s1, s2, conv(row[f"s3_{i}"]), conv(row[f"s4_{i}"])]
+    k = conv(shift.for_segment(row["seg"]))
+    if not p.exact and quality.non_finite == 0 and _overflowed(k, sums, lo, hi):
+        # finite values whose powers overflow a double (|x - k| beyond ~1e77 for the fourth
+        # power): the mean still follows from the first sum, the spread cannot; as a local
+        # summary of the same values gives (Moments.from_values)
+        mean = float(Fraction(k) + Fraction(s1) / n)
+        return SegmentSummary(Moments(n, mean, math.inf, math.nan, math.inf, lo, hi), quality)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", InaccurateResultWarning)
         moments = Moments.from_shifted_sums(n, conv(shift.for_segment(row["seg"])), *sums, lo, hi)
     for w in caught:
         log.warning("metric %s: %s", p.metric.name, w.message)
     return SegmentSummary(moments, quality)
+
+
+def _overflowed(k: float, sums: Sequence[float], lo: float, hi: float) -> bool:
+    """True when the shift, the first sum and the extremes are finite numbers but a higher sum is not."""
+    finite = [k, sums[0], lo, hi]
+    return all(math.isfinite(x) for x in finite) and not all(math.isfinite(x) for x in sums[1:])
 
 
 def _merge(a: Moments, b: Moments) -> Moments:

@@ -385,7 +385,14 @@ class Source:
             traits = EngineTraits.of(self.engine.dialect)
             plans, reason = pushdown.plan_metrics(rel, self.job.metrics, traits)
             if reason is None:
-                return self._fetch_pushdown(period, plans, traits)
+                try:
+                    return self._fetch_pushdown(period, plans, traits)
+                except SourceError as exc:
+                    if not traits.engine.is_overflow(exc.__cause__):
+                        raise
+                    log.warning("job %s: %s: the database's sums overflowed double precision (values beyond "
+                                "~1e154); computing this period locally (reading the rows)", self.job.job,
+                                period.ident)
             if not self._fallback_logged:
                 log.warning("job %s: %s; computing locally (reading the rows) instead", self.job.job, reason)
                 self._fallback_logged = True

@@ -186,6 +186,11 @@ def brown_forsythe(
     if presorted is None:
         medians = [np.median(a) for a in arrays]
     z = [np.abs(a - m) for a, m in zip(arrays, medians)]
+    # F is unchanged when every distance is divided by one constant: divide by the largest,
+    # so that the squares below cannot overflow for finite data of any size (1e300 and up)
+    top = max(float(zi.max()) for zi in z)
+    if 0 < top < math.inf:
+        z = [zi / top for zi in z]
     z_means = np.array([zi.mean() for zi in z])
     sizes = np.array([zi.size for zi in z], dtype=float)
     grand = float(np.sum(sizes * z_means) / big_n)

@@ -154,6 +154,11 @@ def _check_summaries(groups: Sequence[Moments]) -> str | None:
         )
     bad = [i for i, g in enumerate(groups) if not g.is_finite]
     if bad:
+        huge = [i for i in bad if all(math.isfinite(float(x)) for x in (groups[i].mean, groups[i].min, groups[i].max))]
+        if len(huge) == len(bad):
+            # finite values whose squared deviations overflow double precision (beyond ~1.3e154)
+            return (f"values too large for double precision in segment(s) at position(s) {_positions(bad)}: "
+                    "their squared deviations overflow; record the metric in a larger unit")
         return f"non-finite values in segment(s) at position(s) {_positions(bad)}"
     return None
 
