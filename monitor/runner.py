@@ -357,14 +357,15 @@ class Job:
         if isinstance(exc, Exception):
             try:
                 relay(self.history, [s for s in self.sinks if s.channel in self.ledger.op_channels], self.clock,
-                      lease_seconds=self.lease_seconds)
+                      lease_seconds=self.lease_seconds, ledger=self.ledger)
             except Exception as err:  # noqa: BLE001
                 log.warning("job %s: could not write the failure to the alert log: %s", self.config.job, err)
 
     def deliver(self, *, force: bool = False, wait: float | None = None) -> RelayOutcome:
         """Deliver the job's due alerts now (all pending and, after :meth:`History.requeue`, dead ones)."""
         return relay(self.history, self.sinks, self.clock, force=force,
-                     wait=self.relay_wait if wait is None else wait, lease_seconds=self.lease_seconds)
+                     wait=self.relay_wait if wait is None else wait, lease_seconds=self.lease_seconds,
+                     ledger=self.ledger)
 
     def backfill(self, first: str, last: str,
                  progress: Callable[[int, int, Period], None] | None = None) -> list[PeriodReport]:

@@ -561,3 +561,60 @@ def test_values_near_1e300_give_the_local_means_and_say_why_the_spread_is_missin
             assert means == pytest.approx(expected, rel=1e-12), (compute, test)
             assert all(s["sd"] is None for s in metric["segments"])
             assert "values too large for double precision" in metric["note"], (compute, test, metric["note"])
+
+
+# ------------------------------------------------------------------ low: outbox rows under a channel's former name
+
+
+def test_rows_stored_under_a_channels_former_name_are_delivered_and_the_name_loses_its_secret(tmp_path):
+    import http.server
+    import json
+    import sys
+
+    from monitor.delivery.relay import relay
+    from monitor.delivery.sinks.command import CommandSink
+    from monitor.delivery.sinks.webhook import WebhookSink
+    from monitor.model import Event
+    from monitor.periods import parse_period
+    from monitor.store.history import History
+
+    received: list[dict] = []
+
+    class Hook(http.server.BaseHTTPRequestHandler):
+        def do_POST(self):  # noqa: N802 - http.server's naming
+            received.append(json.loads(self.rfile.read(int(self.headers["Content-Length"]))))
+            self.send_response(200)
+            self.end_headers()
+
+        def log_message(self, *args):
+            pass
+
+    server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Hook)
+    threading.Thread(target=server.serve_forever, kwargs={"poll_interval": 0.05}, daemon=True).start()
+    out = tmp_path / "cmd.jsonl"
+    try:
+        hook = WebhookSink(f"http://127.0.0.1:{server.server_address[1]}/hooks/s3cret?token=t0ps3cret")
+        command = CommandSink([sys.executable, "-c",
+                               f"import sys; open({str(out)!r}, 'a').write(sys.stdin.read() + '\\n')",
+                               "--password=hunter2"])
+        former = [hook.former_channels[0], command.former_channels[0]]
+        assert all(name not in (hook.channel, command.channel) for name in former)
+        history = History(f"sqlite:///{tmp_path / 'h.sqlite'}", "hubs")
+        events = [Event("emerged", "dwell", None, "dwell now differs by hub", {}),
+                  Event("segment_missing", None, "C", "hub C has no records", {})]
+        # rows written by a version that named channels by their full URL and arguments
+        history.store_period(parse_period("week", "2026-W11", "UTC"), [], events, former, computed_at=T0,
+                             fingerprint="f", rows=9, null_segment_rows=0, segments=["A", "B", "C"])
+        result = relay(history, [hook, command], FixedClock(T0))
+        assert result.sent == 4 and result.retrying == 0 and result.dead == 0
+        assert [len(r["events"]) for r in received] == [2]
+        assert len(json.loads(out.read_text().splitlines()[0])["events"]) == 2
+        with history.engine.connect() as c:
+            channels = set(c.execute(sa.text("SELECT channel FROM sw_outbox")).scalars())
+        assert channels == {hook.channel, command.channel}
+        assert not any(s in ch for ch in channels for s in ("s3cret", "t0ps3cret", "hunter2"))
+        assert relay(history, [hook, command], FixedClock(T0)).sent == 0  # nothing twice
+        history.dispose()
+    finally:
+        server.shutdown()
+        server.server_close()

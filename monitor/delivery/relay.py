@@ -61,7 +61,9 @@ from typing import Sequence
 
 from monitor.clock import Clock
 from monitor.errors import DeliveryError
-from monitor.store.history import History, is_op
+import sqlalchemy as sa
+
+from monitor.store.history import History, is_op, outbox
 from monitor.store.ledger import RELAY_RESOURCE, Ledger
 from monitor.model import Event
 from monitor.redact import redact
@@ -133,7 +135,7 @@ def backoff(attempts: int, retry_after: float | None = None) -> timedelta:
 
 
 def relay(history: History, sinks: Sequence[Sink], clock: Clock, *, force: bool = False,
-          wait: float = 0.0, lease_seconds: float = 600.0) -> RelayOutcome:
+          wait: float = 0.0, lease_seconds: float = 600.0, ledger: Ledger | None = None) -> RelayOutcome:
     """Deliver the job's due outbox rows, channel by channel, period by period.
 
     Parameters
@@ -149,7 +151,7 @@ def relay(history: History, sinks: Sequence[Sink], clock: Clock, *, force: bool 
     for this round (later periods wait for the earlier one).
     """
     ops = op_channels(sinks)
-    ledger = Ledger(history, clock, lease_seconds, ops)
+    ledger = ledger or Ledger(history, clock, lease_seconds, ops)
     claim = ledger.claim(RELAY_RESOURCE)
     deadline = time.monotonic() + wait
     while not claim.won and time.monotonic() < deadline:
@@ -160,12 +162,46 @@ def relay(history: History, sinks: Sequence[Sink], clock: Clock, *, force: bool 
         return RelayOutcome(busy=claim.owner)
     totals = [0, 0, 0]
     try:
+        rename_old_channels(history, sinks)
         new_ops = _relay_round(history, sinks, clock, ledger, claim, force, totals)
         if new_ops:  # dead letters were recorded: write them to the log channels now
             _relay_round(history, [s for s in sinks if s.channel in ops], clock, ledger, claim, force, totals)
     finally:
         ledger.release(claim)
     return RelayOutcome(*totals)
+
+
+def rename_old_channels(history: History, sinks: Sequence[Sink]) -> int:
+    """Move outbox rows stored under a channel's earlier name to its name now.
+
+    Webhook and command channels were once named by their full URL or arguments (secrets
+    included); they are named with secrets masked now (:mod:`monitor.delivery.sinks`).
+    Rows written under the old name would never be delivered, and keep a secret in the
+    history: they are renamed (a row the new name already holds is dropped as a duplicate).
+    Returns how many rows were moved.
+    """
+    renames = {old: s.channel for s in sinks for old in getattr(s, "former_channels", ()) if old != s.channel}
+    if not renames:
+        return 0
+    history.ensure()
+    with history.engine.connect() as conn:
+        stored = set(conn.execute(sa.select(outbox.c.channel).where(
+            outbox.c.job == history.job, outbox.c.channel.in_(list(renames))).distinct()).scalars())
+    moved = 0
+    if not stored:
+        return 0
+    with history.begin() as conn:
+        for old in stored:
+            new = renames[old]
+            taken = list(conn.execute(sa.select(outbox.c.event_key).where(
+                outbox.c.job == history.job, outbox.c.channel == new)).scalars())
+            for i in range(0, len(taken), 500):
+                conn.execute(sa.delete(outbox).where(outbox.c.job == history.job, outbox.c.channel == old,
+                                                     outbox.c.event_key.in_(taken[i:i + 500])))
+            moved += conn.execute(sa.update(outbox).where(outbox.c.job == history.job, outbox.c.channel == old)
+                                  .values(channel=new)).rowcount or 0
+    log.info("job %s: %d outbox rows moved to the channels' current names", history.job, moved)
+    return moved
 
 
 def _relay_round(history: History, sinks: Sequence[Sink], clock: Clock, ledger: Ledger, claim,

@@ -67,6 +67,8 @@ class Sink(Protocol):
 
     channel: str
     kinds: frozenset[str] | None
+    # optional: ``former_channels``, names the channel was stored under before (the relay
+    # moves their outbox rows to ``channel``; see monitor.delivery.relay.rename_old_channels)
 
     def send(self, job: str, period: str | None, events: Sequence[Mapping[str, Any]]) -> None: ...
 

@@ -66,6 +66,11 @@ class CommandSink:
     def channel(self) -> str:
         return channel_name(self.run)
 
+    @property
+    def former_channels(self) -> tuple[str, ...]:
+        """Names this channel had before secrets were masked (its outbox rows are moved)."""
+        return ("command:" + json.dumps(list(self.run)),)
+
     def send(self, job: str, period: str | None, events: Sequence[Mapping[str, Any]]) -> None:
         body = json.dumps({"job": job, "period": period, "headline": redact(digest.headline(events)),
                            "events": [alert_line(e) for e in digest.ordered(events)]}, default=str)

@@ -102,6 +102,11 @@ class WebhookSink:
     def channel(self) -> str:
         return channel_name(self.url)
 
+    @property
+    def former_channels(self) -> tuple[str, ...]:
+        """Names this channel had before secrets were masked (its outbox rows are moved)."""
+        return (f"webhook:{self.url}",)
+
     def send(self, job: str, period: str | None, events: Sequence[Mapping[str, Any]]) -> None:
         body = json.dumps({"job": job, "period": period, "headline": redact(digest.headline(events)),
                            "events": [alert_line(e) for e in digest.ordered(events)]},
