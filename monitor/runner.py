@@ -266,7 +266,7 @@ class Job:
             try:
                 self.ledger.abandon(claim)
             except Exception as err:  # noqa: BLE001 - the config error is what the caller sees
-                self.ledger.owe_failure(claim, "the configuration could not be used")
+                self.ledger.keep_as_own(claim)
                 log.info("job %s: could not put back the ledger row of %s: %s", cfg.job, period.ident, err)
             raise
         except BaseException as exc:

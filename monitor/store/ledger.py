@@ -385,6 +385,11 @@ class Ledger:
             self._owed[claim.resource] = (claim, error, self.clock.now())
             self._mine.add(claim.owner)
 
+    def keep_as_own(self, claim: Claim) -> None:
+        """Remember that the claim's lease, which could not be released, is ours (the next
+        claim of this ledger takes it back at once)."""
+        self._mine.add(claim.owner)
+
     def owe_outage(self, error: str) -> None:
         """Remember that the history could not be reached at all (a scheduled tick could not
         read the ledger); one ``op_run_failed`` for the whole outage is stored once it is back."""
