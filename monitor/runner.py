@@ -150,19 +150,12 @@ class Job:
 
     def periods(self, first: str, last: str) -> list[Period]:
         """Every period from ``first`` to ``last``; refuses a range that reaches a period that
-        has not ended yet by the clock (a backfill computes complete periods only: an open
-        one would be stored from part of its records; ``run --period`` can compute it)."""
+        has not started by the clock (no record can be in it: it would only add empty ledger
+        rows). The running period may end a range (as ``run --period`` may compute it);
+        ``serve`` computes it again once it has closed."""
         found = period_range(self.config.period, first, last, self.config.timezone)
         if found:
             self._refuse_future(found[-1], f"--to {found[-1].ident}")
-            now = self.clock.now()
-            if found[-1].end_utc > now:
-                latest = latest_complete(self.config.period, now, self.config.timezone)
-                end = found[-1].end
-                raise PeriodError(f"--to {found[-1].ident}: that period of job {self.config.job} has not ended yet "
-                                  f"(it ends {end:%Y-%m-%d %H:%M} {end.tzinfo}); a backfill computes complete "
-                                  f"periods only: the latest is {latest.ident} (run --period {found[-1].ident} "
-                                  "computes the open one)")
         return found
 
     def _refuse_future(self, period: Period, what: str) -> None:
