@@ -242,17 +242,17 @@ def test_objects_are_frozen_and_hashable(tmp_path):
         pytest.param(
             {"source": source(tabel="x")},
             "source.tabel: unknown key; did you mean 'table'? (given: 'tabel'; "
-            "accepted: url, table, query, file, time_column, segment_column, naive_time)",
+            "accepted: url, table, query, file, time_column, segment_column, naive_time, timeout)",
             id="source-typo"),
         pytest.param(
             {"source": ...},
             "source: is required (given: nothing; accepted: a mapping with keys url, table, query, file, time_column, "
-            "segment_column, naive_time)",
+            "segment_column, naive_time, timeout)",
             id="source-missing"),
         pytest.param(
             {"source": "sqlite:///x.db"},
             "source: must be a mapping, not text (given: 'sqlite:///x.db'; accepted: a mapping with keys url, "
-            "table, query, file, time_column, segment_column, naive_time)",
+            "table, query, file, time_column, segment_column, naive_time, timeout)",
             id="source-not-mapping"),
         pytest.param(
             {"source": source(query="SELECT * FROM s")},
