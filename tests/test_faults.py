@@ -616,3 +616,41 @@ def test_rows_stored_under_a_channels_former_name_are_delivered_and_the_name_los
     finally:
         server.shutdown()
         server.server_close()
+
+
+def test_a_delivery_lease_left_by_an_outage_is_taken_back_by_the_next_delivery(tmp_path, monkeypatch):
+    """SQLite history; the failure injected at the write call that releases the ``~relay`` lease."""
+    import json
+
+    from monitor.store.ledger import RELAY_RESOURCE
+
+    cfg = load_config(_config(tmp_path, "sqlite:///state/h.sqlite"))
+    clock = FixedClock(T0)
+    with Job(cfg, clock=clock) as job:
+        job.run("2026-W10")
+        report = job.run("2026-W11", deliver=False)  # stored; its alerts wait in the outbox
+        assert report.new_events > 0
+        release, begin = job.ledger.release, job.history.begin
+
+        def release_during_outage(claim):
+            def unreachable():
+                raise sa.exc.OperationalError("BEGIN IMMEDIATE", {}, Exception("disk I/O error"))
+
+            monkeypatch.setattr(job.history, "begin", unreachable)
+            try:
+                release(claim)
+            finally:
+                monkeypatch.setattr(job.history, "begin", begin)
+
+        monkeypatch.setattr(job.ledger, "release", release_during_outage)
+        with pytest.raises(HistoryError, match=r"release the lease on ~relay"):
+            job.deliver()
+        monkeypatch.setattr(job.ledger, "release", release)
+        assert job.ledger.holder(RELAY_RESOURCE) is not None  # left behind, not expired (same clock)
+        with Job(cfg, clock=clock) as other:  # another process waits for it
+            assert other.deliver().busy is not None
+        again = job.deliver()  # this process takes its own lease back
+        assert again.busy is None and job.ledger.holder(RELAY_RESOURCE) is None
+    lines = [json.loads(x) for x in (tmp_path / "logs" / "alerts.jsonl").read_text().splitlines()]
+    assert {x["period"] for x in lines} == {"2026-W11"} and len(lines) == report.new_events
+    assert len(lines) == len({x["event_key"] for x in lines})  # nothing written twice
