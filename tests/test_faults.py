@@ -558,7 +558,10 @@ def test_values_near_1e300_give_the_local_means_and_say_why_the_spread_is_missin
             means = {s["segment"]: s["mean"] for s in metric["segments"]}
             assert means == pytest.approx(expected, rel=1e-12), (compute, test)
             assert all(s["sd"] is None for s in metric["segments"])
-            assert "values too large for double precision" in metric["note"], (compute, test, metric["note"])
+            if metric["method"] == "kruskal":  # what auto may choose: ranks do not overflow
+                assert metric["p_value"] is not None and 0 <= metric["p_value"] <= 1, (compute, test)
+            else:
+                assert "values too large for double precision" in (metric["note"] or ""), (compute, test, metric)
 
 
 # ------------------------------------------------------------------ low: outbox rows under a channel's former name
