@@ -26,7 +26,7 @@ import sqlalchemy as sa
 
 from monitor.cli import main
 from monitor.config import load_config
-from monitor.errors import EXIT_EMPTY
+from monitor.errors import EXIT_EMPTY, SourceError
 from monitor.source import Source
 
 MONDAY = datetime(2026, 3, 2)  # 2026-W10
@@ -190,7 +190,7 @@ def test_a_sqlite_source_is_opened_read_only(tmp_path):
     src = Source(load_config(write_config(tmp_path, {"url": "sqlite:///own.sqlite", "table": "parcels"})))
     try:
         with src.engine.connect() as conn:
-            with pytest.raises(sa.exc.OperationalError, match="readonly database"):
+            with pytest.raises(SourceError, match="SQLite refused it .attempt to write a readonly database"):
                 conn.exec_driver_sql("DELETE FROM parcels")
             assert conn.exec_driver_sql("SELECT COUNT(*) FROM parcels").scalar() == 240
     finally:

@@ -148,7 +148,7 @@ class SQLiteEngine(Engine):
         if isinstance(exc, sqlite3.OperationalError) and text.startswith("interrupted"):
             return session.timed_out("SQLite", "interrupted by segwatch's progress handler")
         if isinstance(exc, sqlite3.OperationalError) and "readonly database" in text:
-            return session.refused_write("SQLite", one_line(exc) + ", PRAGMA query_only")
+            return session.refused_write("SQLite", one_line(exc))
         return None
 
     # -------------------------------------------------------------- versions
