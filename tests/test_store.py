@@ -498,3 +498,44 @@ def test_long_labels_store_on_postgresql_and_mariadb(server_history, upgrade):
 
     for table in metadata.sorted_tables:
         assert "PRIMARY KEY" in str(sa.schema.CreateTable(table).compile(dialect=sqlite.dialect())), table.name
+
+
+def test_setting_the_version_twice_keeps_one_row_and_a_lost_version_row_is_restored(tmp_path: Path):
+    # two processes making the same history ready: the second finds the row and updates it
+    url = f"sqlite:///{tmp_path / 'h.sqlite'}"
+    first, second = History(url, "hubs"), History(url, "hubs")
+    try:
+        first.ensure()
+        second._set_version()
+        with first.engine.begin() as conn:
+            assert conn.exec_driver_sql("SELECT COUNT(*) FROM sw_schema").scalar_one() == 1
+            conn.exec_driver_sql("DELETE FROM sw_schema")  # tables of the current layout, no version: as version 0
+        second.ensure()
+        with first.engine.connect() as conn:
+            assert conn.exec_driver_sql("SELECT name, version FROM sw_schema").all() == [("history", SCHEMA_VERSION)]
+    finally:
+        first.dispose()
+        second.dispose()
+
+
+def test_alert_rows_and_ledger_entries_read_back_from_their_json(tmp_path: Path, capsys):
+    from monitor.model import Event
+    from monitor.store.history import AlertRow
+    from monitor.store.ledger import LedgerEntry
+
+    path = _config(tmp_path, 0.05)
+    cfg = load_config(path)
+    h = History(cfg.history.url, cfg.job)
+    try:
+        h.store_period(W11, [_result(0.016, True)], [Event("emerged", "dwell", None, "dwell now differs")],
+                       ["log:/tmp/a.jsonl"], computed_at=T0, fingerprint="f", rows=93, null_segment_rows=0,
+                       segments=["A", "B", "C"], settings=RunSettings.of(cfg, version="x"))
+        rows = h.alerts(("pending",))
+    finally:
+        h.dispose()
+    assert len(rows) == 1 and [AlertRow.from_json(r.to_json()) for r in rows] == rows
+    assert main(["alerts", str(path), "--json"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert [AlertRow.from_json(a) for a in doc["alerts"]] == rows
+    entry = LedgerEntry("2026-W11", "failed", 2, "boom", None, "host:1:x", T0, T0, T0)
+    assert LedgerEntry.from_json(entry.to_json()) == entry

@@ -326,6 +326,17 @@ class AlertRow:
             "event_key": self.event_key,
         }
 
+    @classmethod
+    def from_json(cls, data: Mapping[str, Any]) -> "AlertRow":
+        """A row from its JSON (``alerts --json``); times back as aware UTC."""
+        def when(x: Any) -> datetime | None:
+            return utc_aware(str(x).replace("Z", "+00:00")) if x else None
+
+        return cls(data["channel"], data["status"], data.get("period"), data["kind"], data.get("metric"),
+                   data.get("segment"), data.get("message") or "", int(data.get("attempts") or 0),
+                   data.get("last_error"), when(data.get("next_attempt_at")), when(data.get("updated_at")),
+                   data.get("event_key") or "")
+
 
 def _utc_naive(dt: datetime) -> datetime:
     return dt.astimezone(timezone.utc).replace(tzinfo=None)
@@ -434,11 +445,17 @@ class History:
                 if self._ready:
                     return
                 version = self._version(sa.inspect(self.engine))
-                metadata.create_all(self.engine)
-                if version is not None and version < SCHEMA_VERSION:
-                    self._upgrade(version)
-                if version != SCHEMA_VERSION:
-                    self._set_version()
+                try:
+                    metadata.create_all(self.engine)
+                    if version is not None and version < SCHEMA_VERSION:
+                        self._upgrade(version)
+                    if version != SCHEMA_VERSION:
+                        self._set_version()
+                except SQLAlchemyError:
+                    # another process may have created or upgraded the same history meanwhile
+                    if self._version(sa.inspect(self.engine)) != SCHEMA_VERSION:
+                        raise
+                    log.info("history %s: made ready by another process meanwhile", redact(self.url))
         except SQLAlchemyError as exc:
             raise HistoryError(f"cannot create the history tables at {redact(self.url)}: {one_line(exc)}") from exc
         self._ready = True
@@ -465,10 +482,11 @@ class History:
         return int(row.version)
 
     def _set_version(self) -> None:
-        with self.engine.begin() as conn:
-            conn.execute(sa.delete(schema_t).where(schema_t.c.name == "history"))
-            conn.execute(sa.insert(schema_t).values(name="history", version=SCHEMA_VERSION,
-                                                    written_by=str(__version__)[:40]))
+        row = {"name": "history", "version": SCHEMA_VERSION, "written_by": str(__version__)[:40]}
+        with self.engine.begin() as conn:  # two processes setting it at once: the second updates
+            if not insert_missing(conn, schema_t, row):
+                conn.execute(sa.update(schema_t).where(schema_t.c.name == "history").values(
+                    version=SCHEMA_VERSION, written_by=row["written_by"]))
 
     def _upgrade(self, version: int) -> None:
         """Bring a history of layout ``version`` to :data:`SCHEMA_VERSION` (nothing stored moves)."""

@@ -101,6 +101,17 @@ class LedgerEntry:
             "next_attempt_at": iso_utc(self.next_attempt_at),
         }
 
+    @classmethod
+    def from_json(cls, data: Mapping[str, object]) -> "LedgerEntry":
+        """An entry from its JSON (``alerts --json``'s ``periods``); times back as aware UTC."""
+        return cls(str(data["period"]), str(data["state"]), int(data.get("attempts") or 0),  # type: ignore[arg-type]
+                   data.get("last_error"), data.get("note"), data.get("owner"),  # type: ignore[arg-type]
+                   _when(data.get("started_at")), _when(data.get("finished_at")), _when(data.get("next_attempt_at")))
+
+
+def _when(x: object) -> datetime | None:
+    return utc_aware(str(x).replace("Z", "+00:00")) if x else None
+
 
 @dataclass(frozen=True)
 class Claim:
