@@ -57,7 +57,7 @@ from typing import Any, Mapping, Protocol, Sequence
 from .analysis import gate
 from .config import JobConfig, MetricConfig
 from .model import RULE_PER_PERIOD, RULE_TWO_PERIOD, MetricResult, SegmentRow, Verdict
-from .stats import evidence as ev
+from . import stats  # stats.evidence loads scipy: reached on first use (the lazy package), not at import
 
 log = logging.getLogger(__name__)
 
@@ -146,19 +146,19 @@ class Previous:
             return None
         return _p(entry.get("p_value"))
 
-    def state(self, metric: str) -> ev.State | None:
+    def state(self, metric: str) -> stats.evidence.State | None:
         """The announced state of ``metric`` the previous period left."""
         entry = self.entry(metric)
         if not entry:
             return None
         d = entry.get("decision")
         if d and d.get("rule") == RULE_TWO_PERIOD:
-            return ev.State(bool(d.get("on")), int(d.get("quiet") or 0))
+            return stats.evidence.State(bool(d.get("on")), int(d.get("quiet") or 0))
         # stored under the per-period rule (or before rules were stored): its verdict as the state
         cfg = next((m for m in self._job.metrics if m.name == metric), None)
         eff = (entry.get("effect_size") or {}).get("value")
         ok = cfg is None or cfg.min_effect is None or (eff is not None and eff >= cfg.min_effect)
-        return ev.State(bool(entry.get("significant")) and ok, 0)
+        return stats.evidence.State(bool(entry.get("significant")) and ok, 0)
 
     def check_p(self, metric: str, check: str) -> float | None:
         entry = self.entry(metric)
@@ -166,15 +166,15 @@ class Previous:
             return None
         return _p(((entry.get("assumptions") or {}).get(check) or {}).get("value"))
 
-    def check_state(self, metric: str, check: str) -> ev.State | None:
+    def check_state(self, metric: str, check: str) -> stats.evidence.State | None:
         entry = self.entry(metric)
         if not entry:
             return None
         d = (entry.get("check_decisions") or {}).get(check)
         if d and d.get("rule") == RULE_TWO_PERIOD:
-            return ev.State(bool(d.get("on")), int(d.get("quiet") or 0))
+            return stats.evidence.State(bool(d.get("on")), int(d.get("quiet") or 0))
         stored = (entry.get("assumptions") or {}).get(check) or {}
-        return ev.State(stored.get("passed") is False and bool(stored.get("watched", True)), 0)
+        return stats.evidence.State(stored.get("passed") is False and bool(stored.get("watched", True)), 0)
 
     def flags(self, metric: str) -> dict[str, tuple[str, int]]:
         """Announced segment flags of ``metric``: segment -> (flag, periods held without evidence)."""
@@ -207,13 +207,14 @@ def decide_period(results: Sequence[MetricResult], job: JobConfig, previous: Pre
         return tuple(replace(r, segments=_sized(r, cfg.get(r.metric)),
                              decision=Verdict(RULE_PER_PERIOD, r.q_value, job.fdr.level, r.significant,
                                               r.significant)) for r in results)
-    rule = ev.TwoPeriodRule(weight_now=d.weight_now)
-    hysteresis = ev.Hysteresis(clear_above=d.clear_above, quiet_periods=d.quiet_periods)
+    rule = stats.evidence.TwoPeriodRule(weight_now=d.weight_now)
+    hysteresis = stats.evidence.Hysteresis(clear_above=d.clear_above, quiet_periods=d.quiet_periods)
     before = previous.period if previous.adjacent else None
 
-    tracks = {r.metric: ev.Track(_p(r.p_value), previous.p_value(r.metric), previous.state(r.metric),
+    tracks = {r.metric: stats.evidence.Track(_p(r.p_value), previous.p_value(r.metric), previous.state(r.metric),
                                  important(r, cfg.get(r.metric))) for r in results}
-    metric_decisions = ev.decide(rule, hysteresis, ev.Budget(d.false_alarms_per_year, job.period), tracks)
+    budget = stats.evidence.Budget(d.false_alarms_per_year, job.period)
+    metric_decisions = stats.evidence.decide(rule, hysteresis, budget, tracks)
 
     check_tracks = {}
     for r in results:
@@ -221,11 +222,12 @@ def decide_period(results: Sequence[MetricResult], job: JobConfig, previous: Pre
             chk = r.assumptions.get(name)
             # a break is announced only in a period whose own check fails (never "fails" beside a
             # passing p-value, whatever the budget's level for few monthly checks)
-            check_tracks[(r.metric, name)] = ev.Track(
+            check_tracks[(r.metric, name)] = stats.evidence.Track(
                 _p(chk.value) if chk is not None and chk.passed is not None else None,
                 previous.check_p(r.metric, name), previous.check_state(r.metric, name),
                 important=chk is not None and chk.passed is False)
-    check_decisions = ev.decide(rule, hysteresis, ev.Budget(d.check_alarms_per_year, job.period), check_tracks)
+    check_budget = stats.evidence.Budget(d.check_alarms_per_year, job.period)
+    check_decisions = stats.evidence.decide(rule, hysteresis, check_budget, check_tracks)
 
     on_count = sum(1 for x in metric_decisions.decisions.values() if x.state.on)
     computed = sum(1 for r in results if r.computed)
@@ -234,7 +236,7 @@ def decide_period(results: Sequence[MetricResult], job: JobConfig, previous: Pre
     # level over all of them (Bonferroni over the gaps' many-to-one adjusted p-values: conservative)
     gap_tests = sum(1 for r in results if r.reference is not None and metric_decisions.decisions[r.metric].state.on
                     for p in r.pairs if p.b == r.reference and _p(p.p_adj) is not None)
-    gap_level = ev.Budget(d.false_alarms_per_year, job.period).level(gap_tests)
+    gap_level = stats.evidence.Budget(d.false_alarms_per_year, job.period).level(gap_tests)
     out = []
     for r in results:
         dec = metric_decisions.decisions[r.metric]
@@ -261,7 +263,8 @@ def _sized(r: MetricResult, metric: MetricConfig | None) -> tuple[SegmentRow, ..
                  else replace(s, flag=None, direction=None) for s in r.segments)
 
 
-def _gap_flags(r: MetricResult, previous: Previous, on: bool, rule: ev.Rule, hysteresis: ev.Hysteresis,
+def _gap_flags(r: MetricResult, previous: Previous, on: bool, rule: stats.evidence.Rule,
+               hysteresis: stats.evidence.Hysteresis,
                level: float, metric: MetricConfig | None) -> tuple[SegmentRow, ...]:
     """Gaps to the reference under the two-period rule: each segment's gap is a test of
     its own (its many-to-one adjusted p-value, combined with the previous period's when
@@ -287,12 +290,13 @@ def _gap_flags(r: MetricResult, previous: Previous, on: bool, rule: ev.Rule, hys
         same_sign = isinstance(prior_diff, (int, float)) and prior_diff * pair.diff > 0
         p_before = _p(prior.get("p_adj")) if same_sign else None
         important = large_enough(r, s.segment, metric)
-        dec = ev.step(rule, hysteresis, None if held is None or held[0] != direction else ev.State(True, held[1]),
-                      _p(pair.p_adj), p_before, level, important=important)
+        kept = None if held is None or held[0] != direction else stats.evidence.State(True, held[1])
+        dec = stats.evidence.step(rule, hysteresis, kept,
+                                  _p(pair.p_adj), p_before, level, important=important)
         if held is not None and held[0] != direction and not dec.state.on:
             # the announced gap changed sign without evidence for the new one: no evidence for the old
             # direction this period (p = 1), which counts towards clearing it like any quiet period
-            old = ev.step(rule, hysteresis, ev.State(True, held[1]), 1.0,
+            old = stats.evidence.step(rule, hysteresis, stats.evidence.State(True, held[1]), 1.0,
                           _p(prior.get("p_adj")) if not same_sign else None, level)
             if old.state.on:
                 out.append(replace(s, flag=held[0], direction=None, held=old.state.quiet))
@@ -325,7 +329,7 @@ def _held_flags(rows: Sequence[SegmentRow], r: MetricResult, before: Mapping[str
     return tuple(out)
 
 
-def _verdict(dec: ev.Decision, before: str | None) -> Verdict:
+def _verdict(dec: stats.evidence.Decision, before: str | None) -> Verdict:
     e = dec.evidence
     return Verdict(RULE_TWO_PERIOD, e.p_star, dec.level, dec.reject, dec.state.on, dec.state.quiet, dec.change,
                    e.p_before, e.p_combined if math.isfinite(e.p_combined) else None,
