@@ -33,7 +33,8 @@ difference in that period), per 52 periods, with the between-run standard error;
 periods from the shift to the first period announced (0 = in the shift's first period;
 "within 2" = announced in the shift's first or second period).
 
-Seeds: ``numpy.random.SeedSequence([20261202, scenario, chunk])``.
+Seeds: ``numpy.random.SeedSequence([20261202, scenario, chunk])``; ``--seed`` replaces the first
+entry (an independent replication).
 """
 
 from __future__ import annotations
@@ -300,13 +301,21 @@ def run_all(only: set[str] | None, quick: bool, workers: int) -> str:
     return "\n".join(out)
 
 
+def _set_seed(seed: int) -> None:
+    """Replace :data:`SEED` (read by :func:`chunk` here and, through fork, in the workers)."""
+    global SEED
+    SEED = seed
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     ap = argparse.ArgumentParser(prog="python -m tests.sim.decisions", description=__doc__.splitlines()[0])
     ap.add_argument("--only", help="comma-separated scenario keys")
     ap.add_argument("--quick", action="store_true", help="a tenth of the replications")
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--out", help="also write the tables to this file")
+    ap.add_argument("--seed", type=int, default=SEED, help=f"first entry of every run's seed sequence ({SEED})")
     args = ap.parse_args(argv)
+    _set_seed(args.seed)
     text = run_all(set(args.only.split(",")) if args.only else None, args.quick, args.workers)
     if args.out:
         Path(args.out).write_text(text)
