@@ -322,6 +322,17 @@ class TestAuto:
         assert (f"is now {100 * pair.diff:+.1f} pp [{100 * pair.ci_low:+.1f}, {100 * pair.ci_high:+.1f}] "
                 "(difference of shares; newcombe, adjusted p = ") in msg
 
+    def test_report_gives_reference_gaps_in_percentage_points(self):
+        from monitor.present import report
+
+        rng = np.random.default_rng(12)
+        arrays = _zero_one(rng, [200, 200, 200], [0.95, 0.93, 0.70])
+        r = _analyse(_job(reference="a"), arrays, ["a", "b", "c"])
+        html = report._reference_table(r, None, 0.05, "depot")
+        pair = next(p for p in r.pairs if p.a == "c")
+        assert "gap in share to a (interval)" in html
+        assert f"{100 * pair.diff:+.1f} pp ({100 * pair.ci_low:+.1f} to {100 * pair.ci_high:+.1f})" in html
+
     def test_report_and_command_line_name_it(self):
         from monitor import cli
         from monitor.present import report

@@ -996,9 +996,13 @@ def _reference_table(m: MetricResult, decimals: int | None, level: float, seg: s
     rows = []
     family = methods.family(m.posthoc)
     ranks = family is not None and family.ranks  # Dunn's diff is a gap in mean ranks: no units, no ratio
+    points = family is not None and family.points  # a difference of proportions: percentage points
     for p in m.pairs:
         if ranks:
             gap = num(p.diff)
+        elif points:
+            d, lo, hi = (f"{100 * x:+.1f}" if _ok(x) else "–" for x in (p.diff, p.ci_low, p.ci_high))
+            gap = f"{d} pp ({lo} to {hi})"
         elif p.log_scale:  # a difference of logs: the ratio of geometric means and its interval
             gap = f"× {num(_exp(p.diff))} ({num(_exp(p.ci_low))} to {num(_exp(p.ci_high))})"
         else:
@@ -1007,7 +1011,8 @@ def _reference_table(m: MetricResult, decimals: int | None, level: float, seg: s
         rows.append(f"<tr><th scope=\"row\">{_e(p.a)}</th><td class=\"num\">{gap}</td>"
                     f"<td class=\"num {_shade(p.p_adj, level) if p.significant else ''}\">"
                     f"{pval(p.p_adj)}</td></tr>")
-    what = ("gap in mean rank to {ref}" if ranks else "ratio to {ref} (interval)" if any(
+    what = ("gap in mean rank to {ref}" if ranks else "gap in share to {ref} (interval)" if points else
+            "ratio to {ref} (interval)" if any(
         p.log_scale for p in m.pairs) else "gap to {ref} (interval)").format(ref=_e(m.reference))
     head = (f"<tr><th scope=\"col\">{_e(seg.capitalize())}</th><th scope=\"col\">{what}</th>"
             "<th scope=\"col\">p adjusted</th></tr>")
