@@ -335,20 +335,14 @@ def derive_events(
         prev_flags = baseline.flags.get(r.metric, {})
         now_flags = r.flagged if important else {}
         two = r.decision is not None and r.decision.rule == RULE_TWO_PERIOD
-        if two:  # the announced state is the decision rule's (monitor.decisions): no second gate here
-            now_flags = r.flagged
-            if r.decision.change == "on":
-                out.append(_metric_emerged(r, seg_word, eff, None, prev_label))
-            elif r.decision.change == "off":
-                out.append(_metric_cleared(r, m, seg_word, eff, important, None, job.decision.quiet_periods))
-            for seg, flag in sorted(now_flags.items()):
-                if prev_flags.get(seg) != flag:
-                    out.append(_segment_emerged(r, seg, flag, seg_word, unit, decimals, None))
-            for seg, flag in sorted(prev_flags.items()):
-                if now_flags.get(seg) != flag and seg in now_set and r.computed:
-                    out.append(_segment_cleared(r, seg, flag, seg_word, None))
-        elif k == 1:
-            if now_sig and not was:
+        if two or k == 1:
+            if two:  # the announced state is the decision rule's (monitor.decisions): no second gate here
+                now_flags = r.flagged
+                if r.decision.change == "on":
+                    out.append(_metric_emerged(r, seg_word, eff, None, prev_label))
+                elif r.decision.change == "off":
+                    out.append(_metric_cleared(r, m, seg_word, eff, important, None, job.decision.quiet_periods))
+            elif now_sig and not was:
                 out.append(_metric_emerged(r, seg_word, eff, None, prev_label))
             elif was and not now_sig and r.computed:
                 out.append(_metric_cleared(r, m, seg_word, eff, important, None))

@@ -66,28 +66,36 @@ def week_of(period: str) -> int:
     return int(period.split("-W")[1])
 
 
-def run_seed(seed: int, overrides: Sequence[str] = (), code: str | None = None) -> dict[str, Any]:
-    """Build, backfill and score one seed; returns the counts (see the module notes)."""
+def backfill_demo(template: str, db_name: str, build, seed: int, first: str, last: str,
+                  overrides: Sequence[str] = (), code: str | None = None) -> list[dict[str, Any]]:
+    """Build one seed's demo table with ``build(path, seed=seed)``, copy ``configs/<template>``
+    with the source, history and alert paths moved into a temporary folder (``overrides``:
+    ``KEY=YAML`` for top-level keys), run ``segwatch backfill FIRST..LAST --json`` as a user
+    would (with the package in ``code``, default this checkout) and return its documents."""
     with tempfile.TemporaryDirectory(prefix=f"segwatch-field-{seed}-") as tmp:
         folder = Path(tmp)
-        db = depots.build(folder / "depots.sqlite", seed=seed)
-        config = yaml.safe_load((ROOT / "configs" / "demo.yaml").read_text())
+        db = build(folder / db_name, seed=seed)
+        config = yaml.safe_load((ROOT / "configs" / template).read_text())
         config["source"]["url"] = f"sqlite:///{db}"
         config["history"]["url"] = f"sqlite:///{folder / 'history.sqlite'}"
         config["alerts"] = [{"type": "log", "path": str(folder / "alerts.jsonl")}]
         for item in overrides:
             key, _, value = item.partition("=")
             config[key] = yaml.safe_load(value)
-        path = folder / "demo.yaml"
+        path = folder / template
         path.write_text(yaml.safe_dump(config, sort_keys=False))
         env = dict(os.environ, PYTHONPATH=str(code or ROOT), PYTHONDONTWRITEBYTECODE="1")
-        proc = subprocess.run([sys.executable, "-m", "monitor", "backfill", str(path), "--from", "2026-W01",
-                               "--to", f"2026-W{WEEKS:02d}", "--json"], capture_output=True, text=True,
-                              env=env, cwd=folder)
+        proc = subprocess.run([sys.executable, "-m", "monitor", "backfill", str(path), "--from", first,
+                               "--to", last, "--json"], capture_output=True, text=True, env=env, cwd=folder)
         if proc.returncode != 0:
             raise RuntimeError(f"seed {seed}: backfill failed ({proc.returncode}): {proc.stderr.strip()[-500:]}")
-        docs = [json.loads(line) for line in proc.stdout.splitlines() if line.strip()]
-    return score(docs)
+        return [json.loads(line) for line in proc.stdout.splitlines() if line.strip()]
+
+
+def run_seed(seed: int, overrides: Sequence[str] = (), code: str | None = None) -> dict[str, Any]:
+    """Build, backfill and score one seed; returns the counts (see the module notes)."""
+    return score(backfill_demo("demo.yaml", "depots.sqlite", depots.build, seed, "2026-W01", f"2026-W{WEEKS:02d}",
+                               overrides, code))
 
 
 def score(docs: Sequence[dict[str, Any]]) -> dict[str, Any]:

@@ -27,11 +27,7 @@ Counts per seed; the table gives the mean over seeds and how many seeds had none
 from __future__ import annotations
 
 import argparse
-import json
-import os
-import subprocess
 import sys
-import tempfile
 from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
 from typing import Any, Sequence
@@ -41,10 +37,11 @@ if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
 import numpy as np  # noqa: E402
-import yaml  # noqa: E402
 
 sys.path.insert(0, str(ROOT / "sample_db"))
 import plans  # noqa: E402
+
+from tests.sim.field_depots import backfill_demo  # noqa: E402
 
 #: (metric, tier) -> the first month the gap is in the data (its month and the next count as in time)
 TRUE_GAPS = {
@@ -62,25 +59,7 @@ def _next(month: str) -> str:
 
 
 def run_seed(seed: int, overrides: Sequence[str] = ()) -> dict[str, Any]:
-    with tempfile.TemporaryDirectory(prefix=f"segwatch-pricing-{seed}-") as tmp:
-        folder = Path(tmp)
-        db = plans.build(folder / "plans.sqlite", seed=seed)
-        config = yaml.safe_load((ROOT / "configs" / "pricing.yaml").read_text())
-        config["source"]["url"] = f"sqlite:///{db}"
-        config["history"]["url"] = f"sqlite:///{folder / 'history.sqlite'}"
-        config["alerts"] = [{"type": "log", "path": str(folder / "alerts.jsonl")}]
-        for item in overrides:
-            key, _, value = item.partition("=")
-            config[key] = yaml.safe_load(value)
-        path = folder / "pricing.yaml"
-        path.write_text(yaml.safe_dump(config, sort_keys=False))
-        env = dict(os.environ, PYTHONPATH=str(ROOT))
-        proc = subprocess.run([sys.executable, "-m", "monitor", "backfill", str(path), "--from", "2025-01",
-                               "--to", "2026-12", "--json"], capture_output=True, text=True, env=env, cwd=folder)
-        if proc.returncode != 0:
-            raise RuntimeError(f"seed {seed}: backfill failed ({proc.returncode}): {proc.stderr.strip()[-500:]}")
-        docs = [json.loads(line) for line in proc.stdout.splitlines() if line.strip()]
-    return score(docs)
+    return score(backfill_demo("pricing.yaml", "plans.sqlite", plans.build, seed, "2025-01", "2026-12", overrides))
 
 
 def score(docs: Sequence[dict[str, Any]]) -> dict[str, Any]:
