@@ -304,12 +304,7 @@ class Engine:
         statements = list(self.connect_statements(engine.url, role))
         if statements:
             def _on_connect(dbapi_conn: Any, _record: Any) -> None:
-                cursor = dbapi_conn.cursor()
-                try:
-                    for statement in statements:
-                        cursor.execute(statement)
-                finally:
-                    cursor.close()
+                _execute_all(dbapi_conn, statements)
 
             sa.event.listen(engine, "connect", _on_connect)
 
@@ -327,12 +322,7 @@ class Engine:
             statements = list(self.source_session_statements(dbapi_conn, session))
             if not statements:
                 return
-            cursor = dbapi_conn.cursor()
-            try:
-                for statement in statements:
-                    cursor.execute(statement)
-            finally:
-                cursor.close()
+            _execute_all(dbapi_conn, statements)
             dbapi_conn.commit()
 
         sa.event.listen(engine, "connect", _on_connect)
@@ -600,3 +590,13 @@ def check_server_version(engine: str, version: tuple[int, ...] | None, where: st
             f"{format_version(minimum)} or newer (window functions); upgrade the server"
             + kind.version_note
         )
+
+
+def _execute_all(dbapi_conn: Any, statements: Sequence[str]) -> None:
+    """Run ``statements`` in order on a new driver connection (one cursor, always closed)."""
+    cursor = dbapi_conn.cursor()
+    try:
+        for statement in statements:
+            cursor.execute(statement)
+    finally:
+        cursor.close()

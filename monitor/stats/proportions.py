@@ -272,6 +272,20 @@ def _check_confidence(confidence: float) -> float:
 # ---------------------------------------------------------------------------
 # the omnibus test
 # ---------------------------------------------------------------------------
+def _check_family(labels, successes, totals, confidence: float,
+                  adjust: str) -> tuple[tuple[str, ...], np.ndarray, np.ndarray, float]:
+    """The arguments of a family of pairs, checked: labels as text (one per segment), counts,
+    the confidence and the adjustment's name."""
+    x, n = _check_counts(successes, totals)
+    labels = tuple(str(s) for s in labels)
+    if len(labels) != x.size:
+        raise ValueError(f"labels has {len(labels)} entries for {x.size} segments")
+    confidence = _check_confidence(confidence)
+    if adjust not in multiplicity.METHODS:
+        raise ValueError(f"unknown adjustment {adjust!r}; accepted: {', '.join(multiplicity.METHODS)}")
+    return labels, x, n, confidence
+
+
 def _expected(x: np.ndarray, n: np.ndarray) -> np.ndarray:
     share = x.sum() / n.sum()
     return np.concatenate([n * share, n * (1.0 - share)])
@@ -521,13 +535,7 @@ def pairwise(labels: Sequence[str], successes: Sequence[float], totals: Sequence
        independent proportions: comparison of eleven methods. Statistics in Medicine
        17(8), 873-890.
     """
-    x, n = _check_counts(successes, totals)
-    labels = tuple(str(s) for s in labels)
-    if len(labels) != x.size:
-        raise ValueError(f"labels has {len(labels)} entries for {x.size} segments")
-    confidence = _check_confidence(confidence)
-    if adjust not in multiplicity.METHODS:
-        raise ValueError(f"unknown adjustment {adjust!r}; accepted: {', '.join(multiplicity.METHODS)}")
+    labels, x, n, confidence = _check_family(labels, successes, totals, confidence, adjust)
     k = x.size
     if k < 2:
         return ProportionPairs("newcombe", (), confidence, adjust, note=f"fewer than 2 segments to compare (got {k})")
@@ -603,13 +611,7 @@ def to_reference(labels: Sequence[str], successes: Sequence[float], totals: Sequ
        independent proportions: comparison of eleven methods. Statistics in Medicine
        17(8), 873-890.
     """
-    x, n = _check_counts(successes, totals)
-    labels = tuple(str(s) for s in labels)
-    if len(labels) != x.size:
-        raise ValueError(f"labels has {len(labels)} entries for {x.size} segments")
-    confidence = _check_confidence(confidence)
-    if adjust not in multiplicity.METHODS:
-        raise ValueError(f"unknown adjustment {adjust!r}; accepted: {', '.join(multiplicity.METHODS)}")
+    labels, x, n, confidence = _check_family(labels, successes, totals, confidence, adjust)
     if reference not in labels:
         known = ", ".join(repr(v) for v in labels) or "none"
         raise ValueError(f"reference {reference!r} is not one of the labels ({known})")
