@@ -40,7 +40,7 @@ import logging
 import math
 import threading
 from dataclasses import replace
-from typing import TYPE_CHECKING, Any, Mapping, Sequence
+from typing import TYPE_CHECKING, Any, Sequence
 
 import numpy as np
 

@@ -166,7 +166,7 @@ def test_adjusted_metric_against_statsmodels(tmp_path, test, robust):
 
 
 def test_pushdown_and_local_give_the_same_cells_and_verdict(tmp_path):
-    frame = _write_db(tmp_path / "src.sqlite")
+    _write_db(tmp_path / "src.sqlite")
     metric = {"column": "y", "test": "anova", "reference": "Basic", "adjust_for": ["size"]}
     pushed = _run_json(_config(tmp_path, metric, "pushdown"))["metrics"][0]
     local = _run_json(_config(tmp_path, metric, "local"))["metrics"][0]

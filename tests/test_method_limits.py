@@ -102,7 +102,6 @@ class TestWelchSizeFloor:
         """Identical N(50, 5) data, 50 segments x 3 rows, 200 periods: at most a nominal share of
         periods significant at 5% (today: Welch's ANOVA, about 60%)."""
         rng = np.random.default_rng(20261203)
-        job = _job()
         labels = [f"s{i:02d}" for i in range(50)]
         hits, used = 0, set()
         for _ in range(200):

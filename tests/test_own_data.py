@@ -22,7 +22,6 @@ from datetime import datetime, timedelta, timezone
 from pathlib import Path
 
 import pytest
-import sqlalchemy as sa
 
 from monitor.cli import main
 from monitor.config import load_config

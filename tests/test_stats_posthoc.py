@@ -414,7 +414,7 @@ class TestDegenerate:
 
     def test_zero_variance(self):
         groups = _summaries([[2.0, 2, 2], [5.0, 5]])
-        for func in (tukey_kramer, lambda l, g: many_to_one(l, g, "a", "dunnett")):
+        for func in (tukey_kramer, lambda labels, g: many_to_one(labels, g, "a", "dunnett")):
             result = func(["a", "b"], groups)
             (pair,) = result.pairs
             assert result.note == (

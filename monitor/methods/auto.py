@@ -29,7 +29,7 @@ import math
 from typing import TYPE_CHECKING, Any, Mapping, Sequence
 
 from monitor import stats
-from monitor.methods.base import Segments, TestMethod, get, names, normality_matters
+from monitor.methods.base import Segments, TestMethod, get, normality_matters
 
 if TYPE_CHECKING:  # pragma: no cover
     from monitor.stats.diagnostics import Check

@@ -436,7 +436,6 @@ class Source:
     def _fetch_pushdown(self, period: Period, plans: tuple[MetricPlan, ...], traits: EngineTraits) -> PeriodData:
         rel = self._relation()
         where = self.window_clause(period)
-        seg_key = self.cfg.segment_column
         sampling = self.job.sampling
         step = "the shift probe"
         try:

@@ -47,7 +47,7 @@ import time
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable, Sequence
+from typing import Any, Sequence
 
 if __package__ in (None, ""):  # run as a file
     sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
